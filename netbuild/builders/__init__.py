@@ -1,0 +1,1 @@
+"""Builders: records -> Fst. No file access, no printing."""

@@ -1,0 +1,1 @@
+"""Read-only views of FSTs and build directories."""

@@ -1,0 +1,1 @@
+"""Readers and writers: text in, records or FST files out; parsers keep line numbers."""

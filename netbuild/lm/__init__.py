@@ -1,0 +1,1 @@
+"""Language-model utilities: estimation from text (and, later, pruning)."""
