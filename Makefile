@@ -29,7 +29,7 @@ dot:
 	fi
 
 demo: setup
-	$(BIN)/netbuild build --project examples/ferry/project.toml --out build/demo
+	$(BIN)/netbuild build --project examples/ropeway/project.toml --out build/demo
 
 test: setup
 	$(BIN)/python -m pytest -q
