@@ -3,16 +3,39 @@
 - `NgramTable`: the n-grams of one order as numpy arrays.
 - `ArpaModel`: vocabulary plus one `NgramTable` per order.
 - `read_arpa(path, diagnostics=None)`: streamed, validating reader (plain or gzip).
-- `write_arpa(model, path)`: writes the ARPA text form.
+- `write_arpa(model, path)`: writes the ARPA text form (gzip when the name ends in .gz).
+
+The ARPA layout (reference: the ARPA back-off format as described in the SRILM
+`ngram-format(5)` manual page, http://www.speech.sri.com/projects/srilm/manpages/ngram-format.5.html):
+free text, then a ``\\data\\`` section of ``ngram N=COUNT`` lines, then one
+``\\N-grams:`` section per order with lines ``log10prob w1 ... wN [log10backoff]``,
+then ``\\end\\``. The highest order has no back-off column. ``-99`` is the
+conventional log10 of a zero probability; it is kept as the number -99.
+
+Reading works on the raw bytes of large chunks with numpy (tokens, numbers and
+word look-ups are vectorised); a chunk that shows any anomaly is re-read line by
+line to locate every problem. Words are separated by ASCII whitespace (spaces,
+tabs; CR before LF is ignored); words themselves are UTF-8.
+
+Writing prints every value with Python's ``repr`` (the shortest text that reads back
+as the same float64), so ``read_arpa(write_arpa(m))`` restores the values exactly.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import gzip
+import io
+import os
+import re
+from collections.abc import Iterator
+from typing import BinaryIO
 
 import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
 
-from ..errors import Diagnostics
+from ..errors import ArpaError, Diagnostics, Problem
+from ..symbols import SENTENCE_END, SENTENCE_START
 
 
 @dataclasses.dataclass
@@ -34,6 +57,11 @@ class NgramTable:
     def __len__(self) -> int:
         return int(self.words.shape[0])
 
+    @classmethod
+    def empty(cls, order: int) -> "NgramTable":
+        return cls(order, np.zeros((0, order), np.int32), np.zeros(0), np.zeros(0),
+                   np.zeros(0, np.int64))
+
 
 @dataclasses.dataclass
 class ArpaModel:
@@ -52,3 +80,773 @@ class ArpaModel:
 
     def word_index(self) -> dict[str, int]:
         return {w: i for i, w in enumerate(self.vocab)}
+
+
+# ---------------------------------------------------------------------------- reading
+
+_CHUNK = 1 << 21  # bytes per read; small enough to keep the transient memory low
+_WS = np.zeros(256, bool)
+_WS[[9, 10, 11, 12, 13, 32]] = True  # what bytes.split() splits on
+_NUM_RE = re.compile(rb"[+-]?(?:[0-9]+\.?[0-9]*|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+_NONFINITE_RE = re.compile(rb"[+-]?(?:nan|inf|infinity)", re.IGNORECASE)
+_COUNT_RE = re.compile(rb"ngram\s+([0-9]+)\s*=\s*([0-9]+)")
+_SECTION_RE = re.compile(rb"\\([0-9]+)-grams:")
+_ASCII_WS_RE = re.compile(r"[\t\n\x0b\x0c\r ]")
+_MAX_KEY_BYTES = 32  # words up to this length are looked up in numpy, longer ones in a dict
+_MAX_PROBLEMS = 10_000
+_HOLE_CAP = 1 << 62
+
+
+def _ordinal(n: int) -> str:
+    return f"{n}-gram"
+
+
+class _Vocab:
+    """Word bytes -> id, with a numpy hash index for vectorised look-ups."""
+
+    def __init__(self) -> None:
+        self.ids: dict[bytes, int] = {}
+        self.words: list[bytes] = []
+        self._index_size = -1
+
+    def index(self):
+        if self._index_size != len(self.words):
+            n = len(self.words)
+            keys = np.zeros((n, _MAX_KEY_BYTES), np.uint8)
+            lens = np.fromiter(map(len, self.words), np.int64, n)
+            for i, w in enumerate(self.words):
+                if len(w) <= _MAX_KEY_BYTES:
+                    keys[i, :len(w)] = np.frombuffer(w, np.uint8)
+            x = keys.view(np.uint64)
+            h = _hash_rows(x)
+            order = np.argsort(h, kind="stable")
+            self._sorted = h[order]
+            self._order = order
+            self._keys = x
+            self._lens = lens
+            self._index_size = n
+        return self._sorted, self._order, self._keys, self._lens
+
+
+_MUL1, _MUL2 = np.uint64(0xFF51AFD7ED558CCD), np.uint64(0xC4CEB9FE1A85EC53)
+_S29, _S32 = np.uint64(29), np.uint64(32)
+_SALT = np.array([0x9E3779B97F4A7C15 * (j + 1) % 2**64 for j in range(_MAX_KEY_BYTES // 8)],
+                 np.uint64)
+
+
+def _mix(x: np.ndarray) -> np.ndarray:
+    x = x * _MUL1
+    x ^= x >> _S29
+    x *= _MUL2
+    x ^= x >> _S32
+    return x
+
+
+_MIX_SALT = _mix(_SALT)
+
+
+def _hash_rows(x: np.ndarray) -> np.ndarray:
+    """A 64-bit hash of each row of a (k, m) uint64 array; all-zero columns add nothing,
+    so a word hashes the same whatever padding width it was gathered with."""
+    h = np.zeros(x.shape[0], np.uint64)
+    for j in range(x.shape[1]):
+        h ^= _mix(x[:, j] ^ _SALT[j]) ^ _MIX_SALT[j]
+    return h
+
+
+def _gather(win: np.ndarray, starts: np.ndarray, lens: np.ndarray, width: int) -> np.ndarray:
+    """The bytes of each token, zero padded to `width` columns."""
+    m = win[starts, :width]
+    m = m * (np.arange(width) < lens[:, None])
+    return m.astype(np.uint8, copy=False)
+
+
+def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
+                   seg: bytes) -> np.ndarray | None:
+    """Parses decimal tokens exactly; None if any token is not a finite number.
+
+    Tokens of at most 15 significant digits without exponent are parsed in numpy: the
+    digits form an integer m < 2**53 and m / 10**f (f <= 22, both exact doubles) is
+    the correctly rounded value, the same double `float()` returns. Other tokens go
+    through `float()`.
+    """
+    k = len(starts)
+    out = np.empty(k)
+    if k == 0:
+        return out
+    width = int(min(max(lens.max(), 1), 24))
+    m = _gather(win, starts, np.minimum(lens, width), width)
+    digit = (m >= 48) & (m <= 57)
+    dot = m == 46
+    pad = np.arange(width) >= lens[:, None]
+    sign = (m[:, 0] == 45) | (m[:, 0] == 43)
+    other = ~(digit | dot | pad)
+    other[:, 0] &= ~sign
+    ndig = digit.sum(1)
+    fast = (~other.any(1)) & (dot.sum(1) <= 1) & (ndig >= 1) & (ndig <= 15) & (lens <= width)
+    d = np.where(digit, m.astype(np.int64) - 48, 0)
+    power = np.cumsum(digit[:, ::-1], axis=1)[:, ::-1] - digit
+    mant = (d * (10 ** np.minimum(power, 18))).sum(1)
+    frac = (digit & (np.cumsum(dot, axis=1) > 0)).sum(1)
+    val = mant / (10.0 ** frac)
+    val[m[:, 0] == 45] *= -1.0
+    out[:] = val
+    slow = np.flatnonzero(~fast)
+    if len(slow):
+        try:
+            for i in slow.tolist():
+                s = int(starts[i])
+                tok = seg[s:s + int(lens[i])]
+                if not _NUM_RE.fullmatch(tok):
+                    return None
+                out[i] = float(tok)
+        except ValueError:
+            return None
+    if not np.isfinite(out).all():
+        return None
+    return out
+
+
+def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
+            seg: bytes) -> np.ndarray | None:
+    """Word ids of the tokens; None if any token is not a known word."""
+    k = len(starts)
+    if k == 0:
+        return np.zeros(0, np.int32)
+    vsorted, vorder, vkeys, vlens = vocab.index()
+    if len(vsorted) == 0:
+        return None
+    maxlen = int(lens.max())
+    width = min(-(-maxlen // 8) * 8, _MAX_KEY_BYTES)
+    m = _gather(win, starts, np.minimum(lens, width), width)
+    x = m.view(np.uint64)
+    h = _hash_rows(x)
+    pos = np.minimum(np.searchsorted(vsorted, h), len(vsorted) - 1)
+    cand = vorder[pos]
+    ok = (vsorted[pos] == h) & (vlens[cand] == lens) & (lens <= width) & (vkeys[cand, : width // 8] == x).all(1)
+    ids = cand.astype(np.int32)
+    bad = np.flatnonzero(~ok)
+    if len(bad):
+        get = vocab.ids.get
+        for i in bad.tolist():
+            s = int(starts[i])
+            wid = get(seg[s:s + int(lens[i])])
+            if wid is None:
+                return None
+            ids[i] = wid
+    return ids
+
+
+class _TableBuilder:
+    """Accumulates the rows of one order in preallocated numpy arrays."""
+
+    def __init__(self, order: int, capacity: int) -> None:
+        self.order = order
+        self.n = 0
+        self._alloc(max(capacity, 16))
+
+    def _alloc(self, cap: int) -> None:
+        old = getattr(self, "words", None)
+        words = np.empty((cap, self.order), np.int32)
+        lp, bo, ln = np.empty(cap), np.empty(cap), np.empty(cap, np.int64)
+        if old is not None:
+            words[: self.n] = old[: self.n]
+            lp[: self.n], bo[: self.n] = self.logprob[: self.n], self.backoff[: self.n]
+            ln[: self.n] = self.lines[: self.n]
+        self.words, self.logprob, self.backoff, self.lines = words, lp, bo, ln
+
+    def append(self, words, logprob, backoff, lines) -> None:
+        k = len(logprob)
+        if self.n + k > len(self.logprob):
+            self._alloc(max(int(len(self.logprob) * 1.5), self.n + k))
+        sl = slice(self.n, self.n + k)
+        self.words[sl], self.logprob[sl], self.backoff[sl], self.lines[sl] = (
+            words, logprob, backoff, lines)
+        self.n += k
+
+    def table(self) -> NgramTable:
+        n = self.n
+        if n == len(self.logprob):
+            return NgramTable(self.order, self.words, self.logprob, self.backoff, self.lines)
+        return NgramTable(self.order, self.words[:n].copy(), self.logprob[:n].copy(),
+                          self.backoff[:n].copy(), self.lines[:n].copy())
+
+
+def _open_binary(path: str) -> tuple[BinaryIO, int]:
+    """Opens `path` for reading bytes, decompressing gzip (by magic bytes)."""
+    try:
+        size = os.path.getsize(path)
+        raw = open(path, "rb")
+    except OSError as err:
+        raise ArpaError(f"cannot read the file ({err.strerror})",
+                        "check the path and the permissions", path=path) from err
+    magic = raw.read(2)
+    raw.seek(0)
+    if magic == b"\x1f\x8b":
+        return gzip.GzipFile(fileobj=raw, mode="rb"), size * 1100  # deflate's ratio is < 1032
+    return raw, size
+
+
+def _chunks(f: BinaryIO, path: str, problems: list[Problem]) -> Iterator[bytes]:
+    """Yields pieces of the file that end at line ends (the last one ends with '\\n' too)."""
+    rest = b""
+    while True:
+        try:
+            data = f.read(_CHUNK)
+        except (OSError, EOFError, gzip.BadGzipFile) as err:
+            problems.append(Problem(path, None, f"the gzip data is damaged ({err})",
+                                    "recompress the file or give the plain text"))
+            data = b""
+        if not data:
+            if rest:
+                yield rest + b"\n"
+            return
+        buf = rest + data
+        cut = buf.rfind(b"\n")
+        if cut < 0:
+            rest = buf
+            continue
+        rest = buf[cut + 1:]
+        yield buf[: cut + 1]
+
+
+class _ArpaReader:
+    def __init__(self, path: str) -> None:
+        self.path = path
+        self.problems: list[Problem] = []
+        self.vocab = _Vocab()
+        self.declared: dict[int, tuple[int, int]] = {}  # order -> (count, line)
+        self.builders: dict[int, _TableBuilder] = {}
+        self.seen_lines: dict[int, int] = {}  # order -> data lines seen
+        self.state = "preamble"  # preamble | data | ngrams | skip | end
+        self.order = 0
+        self.next_order = 1
+        self.bad_header = False
+        self.line = 0  # lines consumed so far
+        self.byte = 0  # bytes consumed so far
+        self.size_bound = 0
+        self.trailing_text_line = 0
+        self.saw_data = False
+
+    # -- problems
+    def error(self, line: int | None, message: str, hint: str) -> None:
+        if len(self.problems) < _MAX_PROBLEMS:
+            self.problems.append(Problem(self.path, line, message, hint, "error"))
+
+    def warning(self, line: int | None, message: str, hint: str = "") -> None:
+        self.problems.append(Problem(self.path, line, message, hint, "warning"))
+
+    # -- driver
+    def run(self) -> ArpaModel:
+        f, self.size_bound = _open_binary(self.path)
+        nonblank = False
+        with f:
+            for chunk in _chunks(f, self.path, self.problems):
+                if not nonblank and chunk.strip():
+                    nonblank = True
+                self._check_utf8(chunk)
+                self._chunk(chunk)
+                if self.state == "end":
+                    break
+        if not nonblank and self.line <= 1 and not self.problems:
+            self.error(None, "the file is empty", "give an ARPA model (\\data\\, sections, \\end\\)")
+            return self._finish()
+        if self.state != "end":
+            self._close_section()
+            if not self.saw_data:
+                self.error(max(self.line, 1), "no \\data\\ section found; this is not an ARPA file",
+                           "start the model with a line \\data\\ followed by 'ngram N=COUNT' lines")
+            else:
+                self.error(max(self.line, 1), "the file ends without \\end\\",
+                           "add a line \\end\\ after the last section")
+        return self._finish()
+
+    def _check_utf8(self, chunk: bytes) -> None:
+        if chunk.isascii():
+            return
+        pos = 0
+        reported = 0
+        while reported < 20:
+            try:
+                chunk[pos:].decode("utf-8")
+                return
+            except UnicodeDecodeError as err:
+                bad = pos + err.start
+                line = self.line + chunk.count(b"\n", 0, bad) + 1
+                self.error(line, f"bytes that are not valid UTF-8 at byte offset {self.byte + bad}",
+                           "save the file as UTF-8")
+                pos = pos + err.end
+                reported += 1
+
+    def _chunk(self, chunk: bytes) -> None:
+        # Split at header lines (lines starting with a backslash); those are few.
+        pos = 0
+        n = len(chunk)
+        while pos < n:
+            if chunk[pos] == 0x5C:  # '\'
+                end = chunk.index(b"\n", pos) + 1
+                self.line += 1
+                self._header(chunk[pos:end].strip(), self.line)
+                self.byte += end - pos
+                pos = end
+                if self.state == "end":
+                    self._after_end(chunk[pos:])
+                    return
+                continue
+            nxt = chunk.find(b"\n\\", pos)
+            end = n if nxt < 0 else nxt + 1
+            seg = chunk[pos:end]
+            self._body(seg, self.line + 1)
+            self.line += seg.count(b"\n")
+            self.byte += end - pos
+            pos = end
+
+    def _after_end(self, rest: bytes) -> None:
+        if rest.strip():
+            offset = len(rest) - len(rest.lstrip())
+            line = self.line + rest.count(b"\n", 0, offset) + 1
+            self.warning(line, "text after \\end\\ is ignored")
+
+    # -- headers and the \data\ section
+    def _header(self, text: bytes, line: int) -> None:
+        if text == b"\\data\\":
+            if self.saw_data:
+                self.error(line, "a second \\data\\ section", "keep one \\data\\ section at the top")
+                self.state = "skip"
+                return
+            self.saw_data = True
+            self.state = "data"
+            return
+        if text == b"\\end\\":
+            if self.state == "preamble":
+                self.error(line, "\\end\\ before any \\data\\ section",
+                           "start the model with \\data\\")
+            self._close_section()
+            self._check_missing_sections(line)
+            self.state = "end"
+            return
+        if self.state == "preamble":
+            return  # free text before \data\ may contain anything
+        m = _SECTION_RE.fullmatch(text)
+        if m is None:
+            self._close_section()
+            self.bad_header = True
+            self.state = "skip"
+            self.error(line, f"unknown section header '{_show(text)}'",
+                       "section headers are \\data\\, \\N-grams: (N = 1, 2, ...) and \\end\\")
+            return
+        order = int(m.group(1))
+        self._close_section()
+        if self.state == "data" and not self.declared:
+            self.error(line, "the \\data\\ section declares no n-gram counts",
+                       "add lines 'ngram N=COUNT' after \\data\\")
+        if order not in self.declared:
+            self.bad_header = True
+            self.state = "skip"
+            top = max(self.declared) if self.declared else 0
+            self.error(line, f"section \\{order}-grams: but \\data\\ declares "
+                       f"{'no such order' if order > top else f'no count for {order}-grams'}",
+                       f"add 'ngram {order}=COUNT' to \\data\\ or remove the section")
+            return
+        if order in self.builders:
+            self.bad_header = True
+            self.state = "skip"
+            self.error(line, f"a second \\{order}-grams: section",
+                       "merge the sections into one")
+            return
+        if order != self.next_order:
+            self.bad_header = True
+            self.error(line, f"section \\{order}-grams: is out of order (expected "
+                       f"\\{self.next_order}-grams:)", "put the sections in increasing order")
+        self.next_order = max(self.next_order, order + 1)
+        count = self.declared[order][0]
+        per_line = 2 * (order + 1)
+        cap = min(count, self.size_bound // per_line + 1)
+        self.builders[order] = _TableBuilder(order, cap)
+        self.seen_lines[order] = 0
+        self.order = order
+        self.state = "ngrams"
+
+    def _data_lines(self, seg: bytes, first_line: int) -> None:
+        for i, raw in enumerate(seg.split(b"\n")):
+            text = raw.strip()
+            if not text:
+                continue
+            line = first_line + i
+            m = _COUNT_RE.fullmatch(text)
+            if m is None:
+                self.error(line, f"'{_show(text)}' is not a count line",
+                           "write counts as 'ngram N=COUNT' in the \\data\\ section")
+                continue
+            order, count = int(m.group(1)), int(m.group(2))
+            if order < 1:
+                self.error(line, "n-gram orders start at 1", "write 'ngram 1=COUNT' first")
+            elif order in self.declared:
+                self.error(line, f"the count of {order}-grams is given twice",
+                           "keep one 'ngram N=COUNT' line per order")
+            elif order != len(self.declared) + 1:
+                self.error(line, f"'ngram {order}=' follows 'ngram {len(self.declared)}='",
+                           "list the orders 1, 2, 3, ... without gaps, in increasing order")
+                self.declared[order] = (count, line)
+            else:
+                self.declared[order] = (count, line)
+
+    def _close_section(self) -> None:
+        if self.state != "ngrams":
+            return
+        order = self.order
+        count, line = self.declared[order]
+        seen = self.seen_lines[order]
+        if seen != count:
+            self.error(line, f"header promises {count} {order}-grams but {seen} follow",
+                       "fix the count in \\data\\")
+        self.state = "closed"
+
+    def _check_missing_sections(self, line: int) -> None:
+        if self.bad_header:
+            return  # the bad header was probably meant to be the missing section
+        for order, (count, dline) in sorted(self.declared.items()):
+            if order not in self.builders:
+                self.error(dline, f"\\data\\ declares {count} {order}-grams but there is no "
+                           f"\\{order}-grams: section",
+                           f"add the section before line {line} or remove 'ngram {order}='")
+
+    # -- bodies
+    def _body(self, seg: bytes, first_line: int) -> None:
+        state = self.state
+        if state == "ngrams":
+            self._ngrams(seg, first_line)
+        elif state == "data":
+            self._data_lines(seg, first_line)
+        elif state == "closed":
+            if seg.strip():
+                offset = len(seg) - len(seg.lstrip())
+                line = first_line + seg.count(b"\n", 0, offset)
+                self.error(line, "text outside any section",
+                           "put n-grams after a \\N-grams: header")
+                self.state = "skip"
+
+    def _ngrams(self, seg: bytes, first_line: int) -> None:
+        order = self.order
+        top = order == max(self.declared)
+        rows = _fast_rows(seg, order, top, self.vocab if order > 1 else None)
+        if rows is not None and order == 1:
+            spans, lp, bo, rel = rows
+            ids = self._add_words(seg, spans)
+            rows = None if ids is None else (ids, lp, bo, rel)
+        if rows is None:
+            self._slow_rows(seg, first_line, order, top)
+            return
+        ids, lp, bo, rel = rows
+        self.seen_lines[order] += len(rel)
+        self.builders[order].append(ids, lp, bo, rel + first_line)
+
+    def _add_words(self, seg: bytes, spans) -> np.ndarray | None:
+        starts, lens = spans
+        words = [seg[s:s + n] for s, n in zip(starts.tolist(), lens.tolist())]
+        base = len(self.vocab.words)
+        new = dict(zip(words, range(base, base + len(words))))
+        if len(new) != len(words) or (self.vocab.ids.keys() & new.keys()):
+            return None
+        self.vocab.ids.update(new)
+        self.vocab.words.extend(words)
+        return np.arange(base, base + len(words), dtype=np.int32)[:, None]
+
+    def _slow_rows(self, seg: bytes, first_line: int, order: int, top: bool) -> None:
+        """Re-reads a piece line by line, reporting every problem with its line."""
+        ids, lps, bos, rel = [], [], [], []
+        nlines = 0
+        expect = f"{order + 1}" if top else f"{order + 1} or {order + 2}"
+        vocab = self.vocab
+        here: dict[bytes, int] = {}  # 1-grams of this piece -> line
+        for i, raw in enumerate(seg.split(b"\n")):
+            f = raw.split()
+            if not f:
+                continue
+            nlines += 1
+            line = first_line + i
+            if len(f) not in (order + 1, order + 2) or (top and len(f) == order + 2):
+                if top and len(f) == order + 2:
+                    self.error(line, f"{order}-gram with a back-off weight, but {order} is the "
+                               "highest order", "remove the last field (the highest order has "
+                               "no back-off column)")
+                else:
+                    self.error(line, f"{len(f)} fields on a {order}-gram line; expected {expect}"
+                               f" (log10 probability, {order} word{'s' if order > 1 else ''}"
+                               f"{'' if top else ', optional log10 back-off'})",
+                               "separate the fields by spaces or tabs and check for missing"
+                               " or extra words")
+                continue
+            lp = self._number(f[0], line, "log10 probability")
+            bo = 0.0 if len(f) == order + 1 else self._number(f[-1], line, "log10 back-off")
+            if lp is None or bo is None:
+                continue
+            if lp > 0:
+                self.error(line, f"positive log10 probability {_show(f[0])} (a probability "
+                           "above 1)", "ARPA files store log10 probabilities, which are <= 0")
+                continue
+            words = f[1: order + 1]
+            if order == 1:
+                w = words[0]
+                if w in vocab.ids:
+                    first = here[w] if w in here else self._unigram_line(w)
+                    self.error(line, f"duplicate 1-gram '{_show(w)}' (first at line {first})",
+                               "remove one of the two lines")
+                    continue
+                here[w] = line
+                vocab.ids[w] = len(vocab.words)
+                vocab.words.append(w)
+                row = [vocab.ids[w]]
+            else:
+                row = []
+                for w in words:
+                    wid = vocab.ids.get(w)
+                    if wid is None:
+                        self.error(line, f"word '{_show(w)}' is not among the 1-grams",
+                                   "add it to the \\1-grams: section or remove this n-gram")
+                        break
+                    row.append(wid)
+                if len(row) != order:
+                    continue
+            ids.append(row)
+            lps.append(lp)
+            bos.append(bo)
+            rel.append(i)
+        arr = np.array(ids, np.int32).reshape(-1, order)
+        self.seen_lines[order] += nlines
+        if rel:
+            self.builders[order].append(arr, np.array(lps), np.array(bos),
+                                        np.array(rel, np.int64) + first_line)
+
+    def _unigram_line(self, w: bytes) -> str:
+        b = self.builders[1]
+        wid = self.vocab.ids[w]
+        hit = np.flatnonzero(b.words[: b.n, 0] == wid)
+        return str(int(b.lines[hit[0]])) if len(hit) else "?"
+
+    def _number(self, tok: bytes, line: int, what: str) -> float | None:
+        if _NUM_RE.fullmatch(tok):
+            v = float(tok)
+            if np.isfinite(v):
+                return v
+            self.error(line, f"{what} {_show(tok)} is out of range", "write a number between"
+                       " -1e300 and 1e300 (-99 stands for probability zero)")
+            return None
+        if _NONFINITE_RE.fullmatch(tok):
+            self.error(line, f"{what} is {_show(tok)}", "write a finite number (-99 stands for "
+                       "probability zero)")
+            return None
+        self.error(line, f"malformed {what} '{_show(tok)}'",
+                   "write a decimal number such as -1.2345")
+        return None
+
+    # -- end of file
+    def _finish(self) -> ArpaModel:
+        vocab = [w.decode("utf-8", "replace") for w in self.vocab.words]
+        orders = []
+        top = max(self.declared) if self.declared else 0
+        for order in range(1, top + 1):
+            b = self.builders.get(order)
+            orders.append(b.table() if b is not None else NgramTable.empty(order))
+        model = ArpaModel(vocab, orders, self.path)
+        _check_tables(model, self)
+        return model
+
+
+def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
+    """Vectorised parse of a piece of n-gram lines; None when anything is irregular.
+
+    Returns (word ids (k, order) or, for 1-grams, the (starts, lens) of the words,
+    logprob, backoff, relative line numbers of the rows).
+    """
+    padded = seg + b"\0" * 40
+    a = np.frombuffer(padded, np.uint8)
+    nw = np.zeros(len(seg) + 2, bool)
+    np.logical_not(_WS[a[: len(seg)]], out=nw[1:-1])
+    edges = np.flatnonzero(nw[1:] != nw[:-1])
+    starts, ends = edges[0::2], edges[1::2]
+    nl = np.flatnonzero(a[: len(seg)] == 10)
+    per_line = np.diff(np.searchsorted(starts, nl), prepend=0)
+    filled = np.flatnonzero(per_line)
+    c = per_line[filled]
+    if top:
+        if not (c == order + 1).all():
+            return None
+    elif not ((c == order + 1) | (c == order + 2)).all():
+        return None
+    off = np.cumsum(c) - c
+    lens = ends - starts
+    win = sliding_window_view(a, 40)
+    lp = _parse_numbers(win, starts[off], lens[off], seg)
+    if lp is None or (lp > 0).any():
+        return None
+    bo = np.zeros(len(c))
+    has_bo = np.flatnonzero(c == order + 2)
+    if len(has_bo):
+        bidx = off[has_bo] + order + 1
+        vals = _parse_numbers(win, starts[bidx], lens[bidx], seg)
+        if vals is None:
+            return None
+        bo[has_bo] = vals
+    widx = (off[:, None] + np.arange(1, order + 1)).ravel()
+    if vocab is None:
+        return (starts[widx], lens[widx]), lp, bo, filled
+    ids = _lookup(vocab, win, starts[widx], lens[widx], seg)
+    if ids is None:
+        return None
+    return ids.reshape(-1, order), lp, bo, filled
+
+
+def _row_codes(tables: list[np.ndarray], radix: int) -> list[np.ndarray]:
+    """Exact int64 codes of rows (equal rows <-> equal codes), jointly over `tables`."""
+    sizes = [len(t) for t in tables]
+    rows = np.concatenate(tables) if len(tables) > 1 else tables[0]
+    code = rows[:, 0].astype(np.int64)
+    span = radix
+    for j in range(1, rows.shape[1]):
+        if span * radix >= _HOLE_CAP:
+            _, code = np.unique(code, return_inverse=True)
+            code = code.astype(np.int64).ravel()
+            span = int(code.max()) + 1 if len(code) else 1
+        code = code * radix + rows[:, j]
+        span *= radix
+    return np.split(code, np.cumsum(sizes)[:-1])
+
+
+def _check_tables(model: ArpaModel, reader: _ArpaReader) -> None:
+    """Duplicates (errors), history holes and misplaced sentence markers (warnings)."""
+    radix = max(len(model.vocab), 1)
+    index = model.word_index()
+    bos, eos = index.get(SENTENCE_START), index.get(SENTENCE_END)
+    for t in model.orders[1:]:
+        if len(t) == 0:
+            continue
+        (code,) = _row_codes([t.words], radix)
+        s = np.sort(code)
+        if (s[1:] == s[:-1]).any():
+            order = np.argsort(code, kind="stable")
+            sc = code[order]
+            dup = np.flatnonzero(sc[1:] == sc[:-1]) + 1
+            for j in dup[:_MAX_PROBLEMS].tolist():
+                first, second = sorted((int(t.lines[order[j - 1]]), int(t.lines[order[j]])))
+                words = " ".join(model.vocab[w] for w in t.words[order[j]])
+                reader.error(second, f"duplicate {t.order}-gram '{words}' (first at line {first})",
+                             "remove one of the two lines")
+    for lower, t in zip(model.orders, model.orders[1:]):
+        if len(t) == 0 or t.order == 2:  # a 1-word history is a known word, hence listed
+            continue
+        pre, low = _row_codes([t.words[:, :-1], lower.words], radix)
+        low_sorted = np.sort(low)
+        pos = np.minimum(np.searchsorted(low_sorted, pre), max(len(low_sorted) - 1, 0))
+        missing = low_sorted[pos] != pre if len(low_sorted) else np.ones(len(pre), bool)
+        k = int(missing.sum())
+        if k:
+            first = int(t.lines[missing].min())
+            reader.warning(first, f"{k} {t.order}-gram(s) have a history that is not listed "
+                           f"among the {lower.order}-grams (first at line {first})",
+                           "such holes are legal; the history backs off with weight 1")
+    if bos is None or eos is None:
+        missing = " and ".join(w for w, i in ((SENTENCE_START, bos), (SENTENCE_END, eos))
+                               if i is None)
+        reader.warning(None, f"the 1-grams lack {missing}",
+                       "sentence scoring needs <s> as history and </s> as last word")
+    for t in model.orders[1:]:
+        if len(t) == 0:
+            continue
+        bad = np.zeros(len(t), bool)
+        if bos is not None:
+            bad |= t.words[:, -1] == bos
+        if eos is not None:
+            bad |= (t.words[:, :-1] == eos).any(1)
+        if bad.any():
+            first = int(t.lines[bad].min())
+            reader.warning(first, f"{int(bad.sum())} {t.order}-gram(s) predict <s> or continue "
+                           f"after </s> (first at line {first})",
+                           "<s> is a history only and </s> ends a sentence")
+
+
+def _show(text: bytes, limit: int = 40) -> str:
+    s = text.decode("utf-8", "replace")
+    return s if len(s) <= limit else s[: limit - 3] + "..."
+
+
+def read_arpa(path: str | os.PathLike, diagnostics: Diagnostics | None = None) -> ArpaModel:
+    """Reads an ARPA back-off model (plain text or gzip, detected by its magic bytes).
+
+    The file is streamed in chunks; the n-grams land in compact numpy arrays
+    (about 36 bytes per trigram). Every problem is reported as ``path:line: ...``.
+
+    Args:
+      path: the model file.
+      diagnostics: where to add problems (errors and warnings). Without one, only
+        errors count and they are raised.
+
+    Returns:
+      The model; `vocab` lists the 1-gram words in file order.
+
+    Raises:
+      ArpaError: carrying every error found (also when `diagnostics` is given, after
+        the problems have been added to it).
+    """
+    path = os.fspath(path)
+    reader = _ArpaReader(path)
+    model = reader.run()
+    problems = sorted(reader.problems, key=lambda p: (p.line is None, p.line or 0))
+    errors = [p for p in problems if p.severity == "error"]
+    if diagnostics is not None:
+        for p in problems:
+            if p.severity == "error":
+                diagnostics.error(p.path, p.line, p.message, p.hint)
+            else:
+                diagnostics.warning(p.path, p.line, p.message, p.hint)
+    if errors:
+        raise ArpaError.from_problems(errors)
+    return model
+
+
+# ---------------------------------------------------------------------------- writing
+
+def write_arpa(model: ArpaModel, path: str | os.PathLike) -> None:
+    """Writes `model` in the ARPA text form; gzip-compressed when `path` ends in '.gz'.
+
+    Values are printed with ``repr`` (shortest exact form); back-off weights of 0.0
+    are omitted, and the highest order never carries them.
+
+    Raises:
+      ArpaError: if a word contains whitespace or is empty, or the highest order
+        has a non-zero back-off weight (neither can be written in ARPA).
+    """
+    path = os.fspath(path)
+    for w in model.vocab:
+        if not w or _ASCII_WS_RE.search(w):
+            raise ArpaError(f"word {w!r} is empty or contains whitespace, which ARPA cannot"
+                            " hold", "rename the word", path=path)
+    if model.orders and (model.orders[-1].backoff != 0).any():
+        raise ArpaError(f"the highest order ({model.max_order}) has back-off weights",
+                        "drop them or add a higher order", path=path)
+    raw: BinaryIO
+    if path.endswith(".gz"):
+        raw = gzip.open(path, "wb", compresslevel=6)
+    else:
+        raw = open(path, "wb")
+    with raw, io.TextIOWrapper(raw, encoding="utf-8", newline="\n") as out:
+        out.write("\\data\\\n")
+        for t in model.orders:
+            out.write(f"ngram {t.order}={len(t)}\n")
+        vocab = np.array(model.vocab, dtype=object)
+        for t in model.orders:
+            out.write(f"\n\\{t.order}-grams:\n")
+            top = t.order == model.max_order
+            step = 1 << 16
+            for lo in range(0, len(t), step):
+                hi = min(lo + step, len(t))
+                words = vocab[t.words[lo:hi]]
+                text = [" ".join(r) for r in words.tolist()] if t.order > 1 else words[:, 0]
+                lps = map(repr, t.logprob[lo:hi].tolist())
+                if top:
+                    out.writelines(f"{p}\t{w}\n" for p, w in zip(lps, text))
+                else:
+                    bos = t.backoff[lo:hi].tolist()
+                    out.writelines(f"{p}\t{w}\t{b!r}\n" if b != 0.0 else f"{p}\t{w}\n"
+                                   for p, w, b in zip(lps, text, bos))
+        out.write("\n\\end\\\n")

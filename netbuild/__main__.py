@@ -1,0 +1,5 @@
+"""Runs the command line: ``python -m netbuild``."""
+
+from .cli import main
+
+main()

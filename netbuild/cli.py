@@ -1,0 +1,368 @@
+"""The command-line interface (click): options -> one library call -> print.
+
+- `cli`: the click group; `main()`: the console-script entry point.
+
+Commands (``netbuild COMMAND --help`` shows every option):
+
+- ``check``: reads every input and lists every problem; exit 0 when no errors
+  (warnings alone do not fail), 1 otherwise. ``--json`` prints
+  ``{"errors": [{"file", "line", "message"}], "warnings": [...]}``.
+- ``build``: compiles the project into ``--out DIR`` (atomically); stage progress on
+  stderr, then a stage table on stdout, or the manifest with ``--json``.
+- ``stats FILE``: size and properties of an FST file (or of a build directory's graph).
+- ``score --graph DIR [SENTENCE...]``: the language-model cost and the graph's best
+  path cost of each sentence; ``--json`` prints a list of
+  ``{"sentence", "lm_cost", "best_path_cost", "oov"}`` (infinite costs as null).
+- ``estimate --text F -o OUT.arpa``: estimates a back-off model from sentences.
+
+Errors are handled in one place (`_Group.main`): netbuild's own errors print a
+message without a traceback (an `InputError` one located problem per line) and exit 1,
+`CheckFailed` exits 3, usage errors print one line and exit 2, and an interrupt
+prints "interrupted; the previous output is untouched" and exits 130.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import tempfile
+from pathlib import Path
+from typing import Any
+
+import click
+
+from . import __version__
+from .errors import CheckFailed, Diagnostics, InputError, NetbuildError, Problem
+from .project import apply_overrides, parse_size, read_project, require_inputs
+
+EXIT_ERROR = 1
+EXIT_USAGE = 2
+EXIT_INTERNAL = 3
+EXIT_INTERRUPTED = 130
+INTERRUPTED = "interrupted; the previous output is untouched"
+
+
+class _Group(click.Group):
+    """The netbuild group: turns errors into messages and exit codes in one place."""
+
+    def main(self, args=None, prog_name=None, complete_var=None,
+             standalone_mode=True, **extra):
+        if not standalone_mode:
+            return super().main(args, prog_name, complete_var, standalone_mode, **extra)
+        try:
+            rv = super().main(args, prog_name or "netbuild", complete_var,
+                              standalone_mode=False, **extra)
+        except click.UsageError as err:
+            where = err.ctx.command_path if err.ctx is not None else "netbuild"
+            msg = " ".join(err.format_message().split())
+            click.echo(f"{where}: error: {msg} (see '{where} --help')", err=True)
+            sys.exit(EXIT_USAGE)
+        except click.ClickException as err:
+            err.show()
+            sys.exit(err.exit_code)
+        except click.Abort:
+            # click turns KeyboardInterrupt (and EOF) into Abort.
+            click.echo(INTERRUPTED, err=True)
+            sys.exit(EXIT_INTERRUPTED)
+        except KeyboardInterrupt:
+            click.echo(INTERRUPTED, err=True)
+            sys.exit(EXIT_INTERRUPTED)
+        except CheckFailed as err:
+            click.echo(str(err), err=True)
+            sys.exit(EXIT_INTERNAL)
+        except InputError as err:
+            lines = [str(p) for p in err.problems]
+            click.echo("\n".join(lines), err=True)
+            if len(lines) > 1:
+                click.echo(f"{len(lines)} problems found", err=True)
+            sys.exit(EXIT_ERROR)
+        except NetbuildError as err:
+            click.echo(f"error: {err}", err=True)
+            sys.exit(EXIT_ERROR)
+        except OSError as err:
+            where = f"{err.filename}: " if err.filename else ""
+            click.echo(f"error: {where}{err.strerror or err}; check the path and "
+                       "its permissions", err=True)
+            sys.exit(EXIT_ERROR)
+        sys.exit(rv if isinstance(rv, int) else 0)
+
+
+def _size(ctx, param, value):
+    if value is None:
+        return None
+    try:
+        return parse_size(value)
+    except ValueError as err:
+        raise click.BadParameter(str(err), ctx, param) from None
+
+
+_EXISTING = click.Path(exists=True, dir_okay=False, path_type=Path)
+
+
+def _input_options(f):
+    for option in reversed([
+        click.option("--project", "project_file", type=_EXISTING,
+                     help="The project file (TOML); flags override its settings."),
+        click.option("--lexicon", type=_EXISTING, help="The pronunciation lexicon."),
+        click.option("--lm", type=_EXISTING, help="The ARPA language model."),
+        click.option("--phones", type=_EXISTING, help="The phone inventory."),
+    ]):
+        f = option(f)
+    return f
+
+
+def _reading_options(f):
+    for option in reversed([
+        click.option("--layout", type=click.Choice(["plain", "cmudict"]),
+                     help="Lexicon layout."),
+        click.option("--probabilities/--no-probabilities", default=None,
+                     help="The lexicon has a probability column."),
+        click.option("--keep-stress/--no-keep-stress", default=None,
+                     help="cmudict layout: keep the vowels' stress digits."),
+        click.option("--rescale/--no-rescale", default=None,
+                     help="Each word's most likely pronunciation costs 0."),
+        click.option("--silence-probability", type=click.FloatRange(0.0, 1.0, max_open=True),
+                     help="Optional silence between words (0 disables)."),
+        click.option("--oov-policy", type=click.Choice(["drop", "unk", "fail"]),
+                     help="Model words missing from the lexicon: drop, map to <unk>, fail."),
+    ]):
+        f = option(f)
+    return f
+
+
+def _build_options(f):
+    for option in reversed([
+        click.option("--push-weights/--no-push-weights", default=None,
+                     help="Log-semiring weight pushing of the word-level graph."),
+        click.option("--fst-type", type=click.Choice(["vector", "const"]),
+                     help="FST type of the written graph."),
+        click.option("--checks/--no-checks", default=None, help="Per-stage checks."),
+        click.option("--determinize-max-memory", callback=_size, metavar="SIZE",
+                     help="Memory limit of determinization, e.g. 8GiB or 300MiB."),
+        click.option("--determinize-timeout", type=click.FloatRange(0.0, min_open=True),
+                     metavar="SECONDS", help="Time limit of determinization."),
+    ]):
+        f = option(f)
+    return f
+
+
+def _project(project_file: Path | None, **flags: Any):
+    project = read_project(project_file) if project_file is not None else None
+    project = apply_overrides(project, **flags)
+    require_inputs(project)
+    return project
+
+
+def _echo_json(data: Any) -> None:
+    click.echo(json.dumps(data, indent=2, allow_nan=False))
+
+
+def _problem_line(p: Problem) -> str:
+    if p.severity == "error":
+        return str(p)
+    where = p.path if p.line is None else f"{p.path}:{p.line}"
+    text = f"{where}: warning: {p.message}"
+    return f"{text}; {p.hint}" if p.hint else text
+
+
+def _megabytes(n: int) -> str:
+    return f"{n / 2**20:.0f} MiB"
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="netbuild")
+def cli() -> None:
+    """Compiles speech-recognition decoding graphs from a lexicon and a language model."""
+
+
+# --- check ------------------------------------------------------------------------
+
+@cli.command()
+@_input_options
+@_reading_options
+@click.option("--json", "as_json", is_flag=True, help="Print the problems as JSON.")
+def check(project_file, as_json, **flags) -> None:
+    """Reads every input and lists every problem (exit 1 on any error)."""
+    from .workflow import check_inputs
+
+    diag: Diagnostics = check_inputs(_project(project_file, **flags))
+    if as_json:
+        _echo_json({"errors": [p.to_json() for p in diag.errors],
+                    "warnings": [p.to_json() for p in diag.warnings]})
+    else:
+        for p in diag.problems:
+            click.echo(_problem_line(p))
+        n_err, n_warn = len(diag.errors), len(diag.warnings)
+        click.echo(f"{n_err} error(s), {n_warn} warning(s)" if diag.problems
+                   else "all inputs are clean", err=True)
+    if diag.errors:
+        click.get_current_context().exit(EXIT_ERROR)
+
+
+# --- build ------------------------------------------------------------------------
+
+def _stage_row(name: str, states: Any, arcs: Any, seconds: Any, peak: Any) -> str:
+    return f"{name:<12} {states:>10} {arcs:>11} {seconds:>9} {peak:>11}"
+
+
+@cli.command()
+@_input_options
+@_reading_options
+@_build_options
+@click.option("--out", "out_dir", required=True,
+              type=click.Path(file_okay=False, path_type=Path),
+              help="The output directory (replaced only when the build is complete).")
+@click.option("--fast", is_flag=True, help="Skip the per-stage checks (as --no-checks).")
+@click.option("--json", "as_json", is_flag=True, help="Print the manifest as JSON.")
+def build(project_file, out_dir, fast, as_json, **flags) -> None:
+    """Compiles the project into the output directory --out."""
+    from .workflow import build as run_build
+
+    if fast:
+        flags["checks"] = False
+    project = _project(project_file, **flags)
+
+    def progress(record) -> None:
+        click.echo(f"{record.name}: {record.states} states, {record.arcs} arcs, "
+                   f"{record.seconds:.2f} s, peak {_megabytes(record.peak_rss_bytes)}",
+                   err=True)
+
+    result = run_build(project, out_dir, progress)
+    for p in result.warnings:
+        click.echo(_problem_line(p), err=True)
+    if as_json:
+        _echo_json(result.manifest)
+        return
+    click.echo(_stage_row("stage", "states", "arcs", "seconds", "peak"))
+    for s in result.manifest["stages"]:
+        click.echo(_stage_row(s["name"], s["states"], s["arcs"], f"{s['seconds']:.2f}",
+                              _megabytes(s["peak_rss_bytes"])))
+    click.echo(f"wrote {out_dir}")
+
+
+# --- stats ------------------------------------------------------------------------
+
+@cli.command()
+@click.argument("file", type=click.Path(exists=True, path_type=Path))
+@click.option("--json", "as_json", is_flag=True, help="Print the statistics as JSON.")
+def stats(file: Path, as_json: bool) -> None:
+    """Prints the size and properties of an FST file (or a build directory's graph)."""
+    from .inspectors.stats import format_stats_table, fst_stats
+    from .workflow import read_fst_file
+
+    fst = read_fst_file(file)
+    result = fst_stats(fst)
+    if as_json:
+        _echo_json(_jsonable(result))
+    else:
+        click.echo(format_stats_table(result))
+
+
+def _jsonable(value: Any) -> Any:
+    """Converts dataclasses, numpy scalars and infinities into JSON values."""
+    import dataclasses
+
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return {k: _jsonable(v) for k, v in dataclasses.asdict(value).items()}
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_jsonable(v) for v in value]
+    if hasattr(value, "item") and callable(value.item):  # numpy scalar
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return value
+
+
+# --- score ------------------------------------------------------------------------
+
+@cli.command()
+@click.option("--graph", "graph_dir", required=True,
+              type=click.Path(exists=True, file_okay=False, path_type=Path),
+              help="A build directory written by 'netbuild build'.")
+@click.option("--file", "sentence_file", type=_EXISTING,
+              help="Sentences to score, one per line (blank lines are skipped).")
+@click.option("--json", "as_json", is_flag=True, help="Print the scores as JSON.")
+@click.argument("sentences", nargs=-1)
+def score(graph_dir: Path, sentence_file: Path | None, as_json: bool,
+          sentences: tuple[str, ...]) -> None:
+    """Scores sentences with the model and the graph's best path."""
+    from .inspectors.score import score_sentences
+    from .workflow import load_build
+
+    texts = list(sentences)
+    if sentence_file is not None:
+        try:
+            data = sentence_file.read_text(encoding="utf-8")
+        except UnicodeDecodeError as err:
+            raise InputError("the file is not UTF-8 text", "save it as UTF-8",
+                             path=str(sentence_file)) from err
+        texts += [line.strip() for line in data.splitlines() if line.strip()]
+    if not texts:
+        raise click.UsageError("no sentences given; pass them as arguments or with --file")
+    loaded = load_build(graph_dir)
+    results = [r.to_json() for r in score_sentences(loaded.grammar,
+                                                     [t.split() for t in texts])]
+    if as_json:
+        _echo_json(results)
+        return
+    for r in results:
+        oov = f"  (not in the graph: {', '.join(r['oov'])})" if r["oov"] else ""
+        click.echo(f"{_cost(r['lm_cost'])}  {_cost(r['best_path_cost'])}  "
+                   f"{r['sentence']}{oov}")
+
+
+def _cost(value: float | None) -> str:
+    return f"{'inf':>9}" if value is None or not math.isfinite(value) else f"{value:9.3f}"
+
+
+# --- estimate ---------------------------------------------------------------------
+
+@cli.command()
+@click.option("--text", "text_file", required=True, type=_EXISTING,
+              help="Training sentences, one per line.")
+@click.option("--order", type=click.IntRange(1, 9), default=3, show_default=True,
+              help="The n-gram order.")
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The ARPA file to write (atomically).")
+@click.option("--json", "as_json", is_flag=True, help="Print a summary as JSON.")
+def estimate(text_file: Path, order: int, output: Path, as_json: bool) -> None:
+    """Estimates a back-off n-gram model from sentences and writes it as ARPA."""
+    from .io.arpa import write_arpa
+    from .lm.estimate import estimate as run_estimate
+    from .lm.estimate import read_sentences
+
+    sentences = read_sentences(text_file)
+    model = run_estimate(sentences, order)
+    directory = output.absolute().parent
+    if not directory.is_dir():
+        raise InputError("the output directory does not exist", "create it first",
+                         path=str(directory))
+    fd, tmp = tempfile.mkstemp(prefix=f".{output.name}.", suffix=".tmp", dir=directory)
+    os.close(fd)
+    try:
+        write_arpa(model, tmp)
+        os.replace(tmp, output)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+    counts = [int(c) for c in model.counts()]
+    summary = {"output": str(output), "order": model.max_order, "counts": counts,
+               "sentences": len(sentences), "vocabulary_size": len(model.vocab)}
+    if as_json:
+        _echo_json(summary)
+    else:
+        grams = ", ".join(f"{c} {k + 1}-grams" for k, c in enumerate(counts))
+        click.echo(f"wrote {output}: {grams} from {len(sentences)} sentences")
+
+
+def main() -> None:
+    """Runs the command line (the `netbuild` console script)."""
+    cli.main(prog_name="netbuild")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

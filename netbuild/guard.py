@@ -1,0 +1,225 @@
+"""Transducer determinization run in a child process with memory and time limits.
+
+- `GuardResult`: the determinized FST plus what the child measured.
+- `determinize_guarded(ifst, max_memory, timeout, ...)`: determinizes in a child process.
+- `precheck_determinizable(ifst, lfst=None, gfst=None)`: cheap sufficient conditions for
+  failure, tested before the child starts.
+- `python -m netbuild.guard IN OUT STATUS --max-memory N --det-type T`: the child.
+
+OpenFst's `nstate` limit does not bound the determinization of a transducer: it
+determinizes completely and prunes afterwards, silently. A non-determinizable input
+therefore runs until memory runs out. The guard runs the work in a fresh Python process
+(`subprocess`, so the limit does not count the parent's memory; the child imports only
+pynini, the analyses in `netbuild.checks` are imported lazily) whose address space is
+capped with RLIMIT_AS and which is killed after a wall-clock timeout. The FST goes to
+and from the child as OpenFst binary files in a temporary directory.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+
+import pynini
+
+from .errors import DeterminizeError
+from .symbols import BACKOFF
+
+# Exit codes of the child (besides 0 and signals).
+_EXIT_MEMORY = 3
+_EXIT_FSTERROR = 4
+_MB = 1024 * 1024
+
+
+@dataclasses.dataclass
+class GuardResult:
+    """The determinized FST, the child's peak resident memory and its wall time."""
+
+    fst: pynini.Fst
+    peak_rss_bytes: int
+    seconds: float
+
+
+def _likely_causes(lfst: pynini.Fst | None, gfst: pynini.Fst | None) -> str:
+    """Names the most likely input cause of a determinization failure, cheaply."""
+    from .checks import lexicon_pronunciations, unmarked_homophones, unmarked_prefixes
+
+    if lfst is None:
+        return ("the input is probably not functional, or not determinizable (two paths "
+                "with the same input and different outputs or weights under a loop)")
+    prons = lexicon_pronunciations(lfst)
+    homophones = unmarked_homophones(lfst, gfst, prons)
+    if homophones:
+        shown = "; ".join(f"{' '.join(p)} = {', '.join(w)}" for p, w in homophones[:5])
+        return f"the lexicon has homophones without disambiguation markers ({shown})"
+    prefixes = unmarked_prefixes(lfst, prons)
+    if prefixes:
+        shown = "; ".join(f"{a!r} is a prefix of {b!r}" for a, b in prefixes[:5])
+        return f"pronunciations are prefixes of others with no marker ending them ({shown})"
+    if gfst is not None and gfst.input_symbols() is not None:
+        if gfst.input_symbols().find(BACKOFF) == pynini.NO_SYMBOL:
+            return (f"the model's back-off arcs carry no {BACKOFF!r} marker, so back-off "
+                    "paths and direct paths read the same words with different weights")
+    return ("the lexicon or model probably lacks disambiguation markers (homophones, "
+            "prefix pronunciations) or the back-off marker pass-through")
+
+
+def precheck_determinizable(ifst: pynini.Fst, lfst: pynini.Fst | None = None,
+                            gfst: pynini.Fst | None = None) -> None:
+    """Raises `DeterminizeError` at once when `ifst` certainly cannot be determinized.
+
+    Sufficient conditions tested: a cycle of input-epsilon arcs in `ifst` (infinitely
+    many outputs or weights for one input), and, when L is given, pronunciations that
+    spell several words of G with no disambiguation marker (L∘G is then not functional).
+    """
+    from .checks import has_input_epsilon_cycle, unmarked_homophones
+
+    cycle = has_input_epsilon_cycle(ifst)
+    if cycle:
+        raise DeterminizeError(
+            "determinize", f"the input has a cycle of arcs with no input label (states "
+            f"{cycle[:6]}), so it cannot be determinized",
+            f"the back-off arcs probably carry epsilon instead of {BACKOFF!r}, or L lacks "
+            "its back-off pass-through; rebuild G and L with netbuild's builders")
+    if lfst is not None:
+        homophones = unmarked_homophones(lfst, gfst)
+        if homophones:
+            shown = "; ".join(f"{' '.join(p)} = {', '.join(w)}" for p, w in homophones[:8])
+            raise DeterminizeError(
+                "determinize", f"L∘G is not functional: {len(homophones)} pronunciations "
+                f"spell several words with no disambiguation marker ({shown})",
+                "build the lexicon with disambiguation markers, or give these words "
+                "different pronunciations")
+
+
+def _limit_text(limit_bytes: int) -> str:
+    return f"{limit_bytes / _MB:.0f} MB"
+
+
+def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
+                        det_type: str = "functional", lfst: pynini.Fst | None = None,
+                        gfst: pynini.Fst | None = None,
+                        stage: str = "determinize") -> GuardResult:
+    """Constructively determinizes the tropical transducer `ifst` in a child process.
+
+    Args:
+        ifst: the FST to determinize (not changed); epsilon is treated as a label.
+        max_memory: address-space limit of the child, in bytes (RLIMIT_AS).
+        timeout: wall-clock limit in seconds; the child is killed when it is reached.
+        det_type: OpenFst's determinization type ("functional", "nonfunctional",
+            "disambiguate").
+        lfst, gfst: the L and G that `ifst` was composed from, if any; used by the
+            pre-checks and to name the likely cause of a failure.
+        stage: the stage name used in error messages.
+
+    Returns:
+        A `GuardResult` with the determinized FST (symbol tables kept).
+
+    Raises:
+        DeterminizeError: the pre-checks failed, or the child ran out of memory, hit the
+            timeout, found the input non-functional, or crashed.
+    """
+    precheck_determinizable(ifst, lfst, gfst)
+    with tempfile.TemporaryDirectory(prefix="netbuild-det-") as tmp:
+        ipath, opath, spath = (os.path.join(tmp, n) for n in ("in.fst", "out.fst",
+                                                               "status.json"))
+        ifst.write(ipath)
+        cmd = [sys.executable, "-m", "netbuild.guard", ipath, opath, spath,
+               "--max-memory", str(int(max_memory)), "--det-type", det_type]
+        started = time.monotonic()
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                                start_new_session=True)
+        try:
+            _, err_bytes = proc.communicate(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            proc.kill()
+            proc.communicate()
+            elapsed = time.monotonic() - started
+            raise DeterminizeError(
+                stage, f"hit the time limit of {timeout:g} s (stopped after "
+                f"{elapsed:.1f} s); the input is probably not determinizable: "
+                f"{_likely_causes(lfst, gfst)}",
+                "fix the lexicon or model, or raise determinize_timeout if the graph is "
+                "just large") from None
+        elapsed = time.monotonic() - started
+        stderr = err_bytes.decode(errors="replace")
+        status = {}
+        if os.path.exists(spath):
+            with open(spath, encoding="utf-8") as fh:
+                status = json.load(fh)
+        code = proc.returncode
+        if code == 0 and os.path.exists(opath):
+            ofst = pynini.Fst.read(opath)
+            return GuardResult(ofst, int(status.get("peak_rss_bytes", 0)),
+                               float(status.get("seconds", elapsed)))
+    if code == _EXIT_MEMORY or "bad_alloc" in stderr or "MemoryError" in stderr:
+        raise DeterminizeError(
+            stage, f"ran out of its memory limit of {_limit_text(max_memory)} after "
+            f"{elapsed:.1f} s; the input is probably not determinizable: "
+            f"{_likely_causes(lfst, gfst)}",
+            "fix the lexicon or model, or raise determinize_max_memory if the graph is "
+            "just large")
+    if code == _EXIT_FSTERROR:
+        detail = stderr.strip().splitlines()[0] if stderr.strip() else "FST error"
+        raise DeterminizeError(
+            stage, f"OpenFst stopped after {elapsed:.1f} s ({detail}); "
+            f"{_likely_causes(lfst, gfst)}",
+            "build the lexicon with disambiguation markers and G with back-off markers")
+    how = f"signal {-code}" if code < 0 else f"exit code {code}"
+    tail = " | ".join(stderr.strip().splitlines()[-3:])
+    raise DeterminizeError(
+        stage, f"the determinization process crashed ({how}) after {elapsed:.1f} s"
+        + (f": {tail}" if tail else "") + f"; {_likely_causes(lfst, gfst)}",
+        f"if the memory limit ({_limit_text(max_memory)}) is low, raise "
+        "determinize_max_memory; otherwise fix the lexicon or model")
+
+
+def _peak_rss() -> int:
+    """This process's peak resident set size in bytes (VmHWM, else getrusage)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+
+
+def _child(argv: list[str] | None = None) -> int:
+    """Runs in the child: reads IN, determinizes, writes OUT and a JSON STATUS."""
+    parser = argparse.ArgumentParser(prog="python -m netbuild.guard")
+    parser.add_argument("ifile")
+    parser.add_argument("ofile")
+    parser.add_argument("status")
+    parser.add_argument("--max-memory", type=int, required=True)
+    parser.add_argument("--det-type", default="functional")
+    args = parser.parse_args(argv)
+    resource.setrlimit(resource.RLIMIT_CORE, (0, 0))
+    resource.setrlimit(resource.RLIMIT_AS, (args.max_memory, args.max_memory))
+    started = time.monotonic()
+    try:
+        ifst = pynini.Fst.read(args.ifile)
+        ofst = pynini.determinize(ifst, det_type=args.det_type)
+        ofst.write(args.ofile)
+    except MemoryError:
+        return _EXIT_MEMORY
+    except pynini.FstError as err:
+        print(f"FST error: {err}", file=sys.stderr)
+        return _EXIT_FSTERROR
+    with open(args.status, "w", encoding="utf-8") as fh:
+        json.dump({"peak_rss_bytes": _peak_rss(),
+                   "seconds": time.monotonic() - started,
+                   "states": ofst.num_states()}, fh)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(_child())

@@ -1,0 +1,348 @@
+"""The word-level pipeline: L∘G, determinization, minimization, weight pushing.
+
+- `StageRecord`: size, time and peak memory of one stage.
+- `compose_stage(lfst, gfst)`: arc-sorted L∘G.
+- `determinize_stage(ifst, opts, lfst=None, gfst=None)`: guarded transducer determinization.
+- `minimize_stage(ifst, method="encoded")`: minimization keeping labels and weights.
+- `push_stage(ifst)`: weight pushing in the log semiring.
+- `Pipeline`: an ordered list of (name, stage, checks), run with a check after each stage.
+- `WordGraph`, `build_word_graph(lexicon, grammar, opts, progress=None)`: the whole run.
+
+Every stage takes an FST and returns a new one; its input is never changed.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import resource
+import time
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING, Literal
+
+import pynini
+
+from . import checks as chk
+from .errors import EmptyCompositionError, StageError
+from .guard import determinize_guarded
+from .options import BuildOptions
+
+if TYPE_CHECKING:
+    from .builders.grammar import GrammarResult
+    from .builders.lexicon import LexiconResult
+
+MinimizeMethod = Literal["encoded", "transducer"]
+Stage = Callable[[pynini.Fst], pynini.Fst]
+Check = Callable[[pynini.Fst, chk.CheckContext], None]
+
+
+@dataclasses.dataclass
+class StageRecord:
+    """What one stage produced and cost. `peak_rss_bytes` is the stage's own peak."""
+
+    name: str
+    states: int
+    arcs: int
+    seconds: float
+    peak_rss_bytes: int
+    details: dict = dataclasses.field(default_factory=dict)
+
+    def __str__(self) -> str:
+        return (f"{self.name}: {self.states} states, {self.arcs} arcs, "
+                f"{self.seconds:.2f} s, peak {self.peak_rss_bytes / 2**20:.0f} MB")
+
+
+def num_arcs(fst: pynini.Fst) -> int:
+    """Returns the number of arcs of `fst` (summed in OpenFst's order of states)."""
+    return sum(fst.num_arcs(s) for s in fst.states())
+
+
+# ---------------------------------------------------------------------------- memory
+
+
+def _vm_hwm() -> int | None:
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        return None
+    return None
+
+
+def _reset_peak() -> bool:
+    """Resets this process's VmHWM (Linux: write 5 to clear_refs); True on success."""
+    try:
+        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
+            fh.write("5")
+        return True
+    except OSError:
+        return False
+
+
+def _peak_rss() -> int:
+    hwm = _vm_hwm()
+    if hwm is not None:
+        return hwm
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # Linux: KiB
+
+
+# ---------------------------------------------------------------------------- stages
+
+
+def compose_stage(lfst: pynini.Fst, gfst: pynini.Fst) -> pynini.Fst:
+    """Constructively composes L with G; the result is arc-sorted on input labels.
+
+    L's output side is arc-sorted on a copy (G's input side may stay as it is); the
+    composition is trimmed (connected). Symbol tables: L's input, G's output.
+
+    Raises:
+        EmptyCompositionError: L∘G has no path, almost always because no word of the
+            lexicon occurs in the model (different spellings or vocabularies).
+    """
+    lsorted = pynini.arcsort(lfst, sort_type="olabel")
+    try:
+        ofst = pynini.compose(lsorted, gfst, connect=True)
+    except pynini.FstError as err:
+        raise StageError("compose", f"OpenFst could not compose L and G ({err})",
+                         "check that L's output and G's input use the same word "
+                         "symbol table") from err
+    if ofst.start() == pynini.NO_STATE_ID or ofst.num_states() == 0:
+        raise EmptyCompositionError(
+            "compose", "L∘G has no path: no word of the lexicon occurs in the model "
+            "(or no sentence of the model can be spelt with the lexicon)",
+            "check that the lexicon and the language model use the same word spellings "
+            "and that the model's words have pronunciations")
+    ofst.arcsort(sort_type="ilabel")
+    return ofst
+
+
+def determinize_stage(ifst: pynini.Fst, opts: BuildOptions, *,
+                      lfst: pynini.Fst | None = None, gfst: pynini.Fst | None = None,
+                      details: dict | None = None) -> pynini.Fst:
+    """Constructively determinizes the tropical transducer `ifst` in a guarded child.
+
+    The input must be functional (L∘G with disambiguation and back-off markers is);
+    epsilon is treated as an ordinary label. The work runs in a child process limited to
+    `opts.determinize_max_memory` bytes and `opts.determinize_timeout` seconds; see
+    `netbuild.guard`. When `details` is given, the child's peak memory and time are
+    stored in it ("child_peak_rss_bytes", "child_seconds").
+
+    Raises:
+        DeterminizeError: a pre-check failed, or the child hit a limit or crashed.
+    """
+    result = determinize_guarded(ifst, opts.determinize_max_memory,
+                                 opts.determinize_timeout, det_type="functional",
+                                 lfst=lfst, gfst=gfst)
+    if details is not None:
+        details["child_peak_rss_bytes"] = result.peak_rss_bytes
+        details["child_seconds"] = result.seconds
+    return result.fst
+
+
+def minimize_stage(ifst: pynini.Fst, method: MinimizeMethod = "encoded") -> pynini.Fst:
+    """Constructively minimizes the input-deterministic transducer `ifst`.
+
+    "encoded" (the default) encodes each arc's labels and weight as one label with
+    `pynini.EncodeMapper`, minimizes the resulting unweighted deterministic acceptor and
+    decodes. It keeps every weight where it is (an earlier push survives) and never
+    moves output labels. "transducer" is OpenFst's weighted transducer minimization: it
+    first pushes labels and weights toward the start state in the tropical semiring,
+    which can merge more states but undoes any log-semiring push done before it.
+
+    Measured on generated L∘G graphs (2 cores; determinized word graph 78k states,
+    174k arcs): encoded 0.09 s, transducer 0.56 s; the transducer result was 6 % smaller.
+    Both are correct (checked with pynini.equivalent); the pipeline uses "encoded"
+    because it is faster by a factor of about six and keeps weights in place for the
+    log-semiring push that follows. TODO(d1): re-measure on the demo data.
+    """
+    if method == "transducer":
+        ofst = ifst.copy()
+        ofst.minimize(allow_nondet=False)
+        return ofst
+    if method != "encoded":
+        raise ValueError(f"unknown minimize method {method!r}; use 'encoded' or "
+                         "'transducer'")
+    mapper = pynini.EncodeMapper(ifst.arc_type(), encode_labels=True, encode_weights=True)
+    ofst = pynini.encode(ifst, mapper)
+    ofst.minimize()
+    ofst = pynini.decode(ofst, mapper)
+    ofst.set_input_symbols(ifst.input_symbols())
+    ofst.set_output_symbols(ifst.output_symbols())
+    return ofst
+
+
+def push_stage(ifst: pynini.Fst) -> pynini.Fst:
+    """Constructively pushes the weights of the tropical `ifst` toward its start state
+    in the log semiring.
+
+    The arcs are mapped to log arcs, pushed (the total weight stays on the start
+    state's side, so every complete path keeps its weight) and mapped back. Afterwards
+    the arcs leaving each state form a probability distribution (up to the start state's
+    total), which helps a beam search.
+    """
+    log = pynini.arcmap(ifst, map_type="to_log")
+    pushed = pynini.push(log, push_weights=True, reweight_type="to_initial")
+    ofst = pynini.arcmap(pushed, map_type="to_std")
+    ofst.set_input_symbols(ifst.input_symbols())
+    ofst.set_output_symbols(ifst.output_symbols())
+    return ofst
+
+
+# -------------------------------------------------------------------------- pipeline
+
+
+@dataclasses.dataclass(frozen=True)
+class Step:
+    """One stage of a `Pipeline`: a name, the stage function and its checks."""
+
+    name: str
+    stage: Callable[[pynini.Fst, dict], pynini.Fst]
+    checks: Sequence[Check] = ()
+    keep_as: str | None = None  # key under which the result is kept, if any
+
+
+class Pipeline:
+    """An ordered list of (name, stage, checks), run one after the other.
+
+    Each stage gets the previous result and a `details` dict it may fill; its checks
+    run right after it unless `checks` is False.
+    """
+
+    def __init__(self, steps: Sequence[Step]) -> None:
+        self.steps = list(steps)
+
+    @property
+    def names(self) -> list[str]:
+        return [s.name for s in self.steps]
+
+    def run(self, ifst: pynini.Fst, *, checks: bool = True,
+            context: Callable[[str], chk.CheckContext] | None = None,
+            progress: Callable[[StageRecord], None] | None = None,
+            ) -> tuple[pynini.Fst, list[StageRecord], dict[str, pynini.Fst]]:
+        """Runs every step; returns the last FST, the stage records and the kept FSTs."""
+        records: list[StageRecord] = []
+        kept: dict[str, pynini.Fst] = {}
+        fst = ifst
+        for step in self.steps:
+            details: dict = {}
+            _reset_peak()
+            started = time.perf_counter()
+            fst = step.stage(fst, details)
+            seconds = time.perf_counter() - started
+            if checks:
+                ctx = context(step.name) if context else chk.CheckContext(step.name)
+                checked = time.perf_counter()
+                for check in step.checks:
+                    check(fst, ctx)
+                details["check_seconds"] = time.perf_counter() - checked
+            peak = max(_peak_rss(), int(details.get("child_peak_rss_bytes", 0)))
+            record = StageRecord(step.name, fst.num_states(), num_arcs(fst), seconds,
+                                 peak, details)
+            records.append(record)
+            if step.keep_as:
+                kept[step.keep_as] = fst
+            if progress is not None:
+                progress(record)
+        return fst, records, kept
+
+
+@dataclasses.dataclass
+class WordGraph:
+    """The optimized word-level graph, its stage records and kept intermediate FSTs.
+
+    `intermediates` holds "lexicon", "grammar", "composed", "determinized",
+    "minimized", "pushed" (when pushing is on) and "wordgraph" (the final FST).
+    """
+
+    fst: pynini.Fst
+    stages: list[StageRecord]
+    intermediates: dict[str, pynini.Fst]
+
+
+_STRUCTURE: tuple[Check, ...] = (chk.check_nonempty, chk.check_connected, chk.check_labels)
+_DETERMINISTIC: tuple[Check, ...] = _STRUCTURE + (chk.check_input_deterministic,
+                                                  chk.check_no_input_epsilon_cycles)
+
+
+def word_pipeline(lfst: pynini.Fst, gfst: pynini.Fst, opts: BuildOptions) -> Pipeline:
+    """Returns the pipeline from G to the word graph: compose with L, determinize,
+    minimize and (when `opts.push_weights`) push."""
+
+    def compose(g: pynini.Fst, details: dict) -> pynini.Fst:
+        return compose_stage(lfst, g)
+
+    def determinize(f: pynini.Fst, details: dict) -> pynini.Fst:
+        return determinize_stage(f, opts, lfst=lfst, gfst=gfst, details=details)
+
+    def minimize(f: pynini.Fst, details: dict) -> pynini.Fst:
+        details["method"] = "encoded"
+        return minimize_stage(f, "encoded")
+
+    def push(f: pynini.Fst, details: dict) -> pynini.Fst:
+        return push_stage(f)
+
+    steps = [
+        Step("compose", compose, _STRUCTURE + (chk.check_no_input_epsilon_cycles,
+                                               chk.check_words_reachable), "composed"),
+        Step("determinize", determinize, _DETERMINISTIC, "determinized"),
+        Step("minimize", minimize, _DETERMINISTIC, "minimized"),
+    ]
+    if opts.push_weights:
+        steps.append(Step("push", push, _DETERMINISTIC, "pushed"))
+    return Pipeline(steps)
+
+
+def _input_record(name: str, fst: pynini.Fst, seconds: float) -> StageRecord:
+    return StageRecord(name, fst.num_states(), num_arcs(fst), seconds, _peak_rss(),
+                       {"check_seconds": seconds})
+
+
+def build_word_graph(lexicon: LexiconResult, grammar: GrammarResult, opts: BuildOptions,
+                     progress: Callable[[StageRecord], None] | None = None) -> WordGraph:
+    """Builds the optimized word-level graph det(min(push(L∘G))) from L and G.
+
+    Checks L and G first (unless `opts.checks` is False): structure, labels, homophones
+    without markers, the back-off pass-through. Then composes, determinizes (guarded),
+    minimizes and pushes, checking after each stage. `progress` is called with each
+    stage's record as soon as the stage is done. Neither input FST is changed.
+
+    Raises:
+        InputCheckFailed, EmptyCompositionError, DeterminizeError: input causes.
+        CheckFailed: a netbuild bug (evidence saved on disk).
+    """
+    lfst, gfst = lexicon.fst, grammar.fst
+    phones = lexicon.phone_symbols if lexicon.phone_symbols is not None \
+        else lfst.input_symbols()
+    words = grammar.word_symbols if grammar.word_symbols is not None \
+        else gfst.output_symbols()
+    records: list[StageRecord] = []
+
+    def context(stage: str) -> chk.CheckContext:
+        if stage == "grammar":
+            return chk.CheckContext(stage, words, words, False, None, gfst)
+        if stage == "lexicon":
+            return chk.CheckContext(stage, phones, words, True, lfst, gfst)
+        return chk.CheckContext(stage, phones, words, False, lfst, gfst)
+
+    inputs = (("grammar", gfst, (chk.check_nonempty, chk.check_connected, chk.check_labels)),
+              ("lexicon", lfst, (chk.check_nonempty, chk.check_labels,
+                                 chk.check_homophones, chk.check_backoff_passthrough)))
+    for name, fst, checks in inputs:
+        started = time.perf_counter()
+        if opts.checks:
+            ctx = context(name)
+            for check in checks:
+                check(fst, ctx)
+        record = _input_record(name, fst, time.perf_counter() - started)
+        records.append(record)
+        if progress is not None:
+            progress(record)
+
+    pipeline = word_pipeline(lfst, gfst, opts)
+    final, stage_records, kept = pipeline.run(gfst, checks=opts.checks, context=context,
+                                              progress=progress)
+    final.set_input_symbols(phones)
+    final.set_output_symbols(words)
+    intermediates = {"grammar": gfst, "lexicon": lfst, **kept, "wordgraph": final}
+    return WordGraph(final, records + stage_records, intermediates)

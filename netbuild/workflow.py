@@ -1,0 +1,490 @@
+"""The build workflow: check the inputs, compile them, write one output directory.
+
+- `check_inputs(project)`: reads every input with one `Diagnostics`; all problems at once.
+- `read_inputs(project, diagnostics)`: the records behind `check_inputs` and `build`.
+- `build(project, out_dir, progress=None)`: compiles L, G and the word-level graph and
+  writes the output directory atomically; returns a `BuildResult`.
+- `load_build(directory)`: reads an output directory back as a `LoadedBuild`.
+- `atomic_directory(out_dir)`: the context manager behind the atomic write.
+
+Output directory (every name relative to it)::
+
+    graph.fst       the word-level graph (OpenFst binary, vector or const per options)
+    grammar.fst     G (vector)
+    lexicon.fst     L (vector)
+    word.syms       the word table, OpenFst text symbol table (G's and L's outputs)
+    input.syms      the phone table with the auxiliary markers (L's and the graph's inputs)
+    manifest.json   what was built, from what, and how (below)
+
+``manifest.json`` is a JSON object:
+
+- ``"format"``: the string ``"netbuild-build"`` (what `load_build` recognises);
+- ``"version"``: the netbuild version that wrote it;
+- ``"graph"``, ``"word_symbols"``, ``"input_symbols"``: the file names above;
+- ``"intermediates"``: ``{"grammar": ..., "lexicon": ..., "wordgraph": ...}`` file names;
+- ``"stages"``: a list of ``{"name", "states", "arcs", "seconds", "peak_rss_bytes",
+  "details"}``, in the order the stages ran (``peak_rss_bytes`` is the process's peak
+  resident memory so far, or the child's for guarded stages);
+- ``"inputs"``: ``{"lexicon", "lm", "phones"}`` -> ``{"path", "sha256"}`` (phones is
+  null when the project names no inventory);
+- ``"auxiliary_markers"``: the auxiliary symbols of the input table, in table order;
+- ``"markers"``: ``{"count": K, "words": [...]}``, the number of distinct
+  disambiguation markers and the words that carry one (sorted);
+- ``"vocabulary"``: ``{"dropped": [...], "mapped_to_unk": [...],
+  "removed_unigram_mass": float}`` from restricting the model to the lexicon;
+- ``"options"``: the `BuildOptions` as a nested object.
+
+Atomicity: everything is written into a fresh temporary directory beside `out_dir` (same
+filesystem). Only when it is complete is an existing `out_dir` renamed aside, the new
+directory renamed into place, and the old one deleted. On any exception (including
+KeyboardInterrupt, and SIGTERM, which `build` turns into KeyboardInterrupt while it
+runs) the temporary directory is removed and the previous `out_dir` is untouched.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import hashlib
+import json
+import os
+import shutil
+import signal
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import pynini
+import pywrapfst
+
+from . import __version__
+from .builders.grammar import build_grammar
+from .builders.lexicon import build_lexicon
+from .builders.vocabulary import restrict_vocabulary
+from .errors import Diagnostics, InputError, ProjectError
+from .io.arpa import ArpaModel, read_arpa
+from .io.fstfile import write_fst
+from .io.lexicon import Lexicon, read_lexicon
+from .io.phones import PhoneInventory, inventory_from_lexicon, read_phones
+from .pipeline import StageRecord, build_word_graph
+from .project import Project, require_inputs
+from .symbols import SENTENCE_END, SENTENCE_START, is_auxiliary
+
+MANIFEST = "manifest.json"
+MANIFEST_FORMAT = "netbuild-build"
+GRAPH_FILE = "graph.fst"
+GRAMMAR_FILE = "grammar.fst"
+LEXICON_FILE = "lexicon.fst"
+WORD_SYMBOLS_FILE = "word.syms"
+INPUT_SYMBOLS_FILE = "input.syms"
+_OOV_EXAMPLES = 8  # model words listed by name in the missing-pronunciation report
+
+Progress = Callable[[StageRecord], None]
+
+
+@dataclasses.dataclass
+class Inputs:
+    """The records read from a project's inputs."""
+
+    inventory: PhoneInventory
+    lexicon: Lexicon
+    model: ArpaModel
+
+
+@dataclasses.dataclass
+class BuildResult:
+    """What `build` wrote: the directory, its manifest and the stage records."""
+
+    out_dir: Path
+    manifest: dict[str, Any]
+    stages: list[StageRecord]
+    warnings: list[Any]
+
+
+@dataclasses.dataclass
+class LoadedBuild:
+    """An output directory read back: the manifest, the FSTs and the symbol tables."""
+
+    path: Path
+    manifest: dict[str, Any]
+    graph: pynini.Fst
+    grammar: pynini.Fst
+    lexicon: pynini.Fst
+    word_symbols: pynini.SymbolTable
+    input_symbols: pynini.SymbolTable
+
+
+# --- reading and checking ---------------------------------------------------------
+
+def _absorb(diag: Diagnostics, err: InputError) -> None:
+    """Adds the problems of `err` that the reader did not already record."""
+    known = set(diag.problems)
+    for p in err.problems:
+        if p not in known:
+            diag.problems.append(p)
+
+
+def missing_pronunciations(model: ArpaModel, lexicon: Lexicon) -> list[str]:
+    """Returns the model's words (vocabulary order) that have no lexicon entry.
+
+    The sentence markers are not words and are never reported.
+    """
+    known = set(lexicon.words())
+    return [w for w in model.vocab
+            if w not in (SENTENCE_START, SENTENCE_END) and w not in known]
+
+
+def _report_oov(diag: Diagnostics, project: Project, model: ArpaModel,
+                lexicon: Lexicon) -> None:
+    missing = missing_pronunciations(model, lexicon)
+    if not missing:
+        return
+    policy = project.options.grammar.oov_policy
+    shown = ", ".join(f"'{w}'" for w in missing[:_OOV_EXAMPLES])
+    more = f" and {len(missing) - _OOV_EXAMPLES} more" if len(missing) > _OOV_EXAMPLES else ""
+    what = (f"{len(missing)} word(s) of the language model have no pronunciation in "
+            f"{lexicon.path}: {shown}{more}")
+    if policy == "fail":
+        diag.error(str(project.lm), None, what,
+                   "add their pronunciations to the lexicon, or set [grammar] oov_policy "
+                   "to \"drop\" or \"unk\"")
+    elif policy == "unk":
+        diag.warning(str(project.lm), None, what + "; they are mapped to <unk>",
+                     "add their pronunciations to keep them as words")
+    else:
+        diag.warning(str(project.lm), None, what + "; they are dropped from the graph",
+                     "add their pronunciations to keep them")
+
+
+def read_inputs(project: Project, diagnostics: Diagnostics) -> Inputs | None:
+    """Reads the inventory, the lexicon and the model, recording every problem.
+
+    Lexicon phones are checked against the inventory (when there is one), and the
+    model's words without a pronunciation are reported per the OOV policy.
+
+    Returns:
+      The records, or None when an input could not be read at all (the reasons are in
+      `diagnostics`). Records are returned even when errors were recorded.
+    """
+    require_inputs(project)
+    diag = diagnostics
+    inventory = lexicon = model = None
+    if project.phones is not None:
+        try:
+            inventory = read_phones(project.phones, diag)
+        except InputError as err:
+            _absorb(diag, err)
+    try:
+        # With a broken inventory the phones are not checked, so the lexicon's own
+        # problems are still found (the inventory's are reported above).
+        lexicon = read_lexicon(project.lexicon, inventory, project.options.lexicon, diag)
+    except InputError as err:
+        _absorb(diag, err)
+    try:
+        model = read_arpa(project.lm, diag)
+    except InputError as err:
+        _absorb(diag, err)
+    if lexicon is not None and inventory is None and project.phones is None:
+        try:
+            inventory = inventory_from_lexicon(lexicon, diag)
+        except InputError as err:
+            _absorb(diag, err)
+    if lexicon is not None and model is not None:
+        _report_oov(diag, project, model, lexicon)
+    if inventory is None or lexicon is None or model is None:
+        return None
+    return Inputs(inventory, lexicon, model)
+
+
+def check_inputs(project: Project) -> Diagnostics:
+    """Reads every input of `project` and returns all problems found, of all inputs.
+
+    Never raises for problems in the inputs: they are in the returned `Diagnostics`
+    (errors and warnings, in the order found).
+
+    Raises:
+      ProjectError: the project names no lexicon or no language model.
+    """
+    diag = Diagnostics()
+    read_inputs(project, diag)
+    return diag
+
+
+# --- the atomic output directory --------------------------------------------------------
+
+def _is_build(directory: Path) -> bool:
+    try:
+        data = json.loads((directory / MANIFEST).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(data, dict) and data.get("format") == MANIFEST_FORMAT
+
+
+def _publish_modes(directory: Path) -> None:
+    """Gives the directory and its files the modes a plain mkdir/open would have.
+
+    mkdtemp and mkstemp create private (0700/0600) entries; the output is not private.
+    """
+    umask = os.umask(0)
+    os.umask(umask)
+    os.chmod(directory, 0o777 & ~umask)
+    for entry in directory.iterdir():
+        if entry.is_file():
+            os.chmod(entry, 0o666 & ~umask)
+
+
+@contextlib.contextmanager
+def atomic_directory(out_dir: str | os.PathLike) -> Iterator[Path]:
+    """Yields a fresh temporary directory that replaces `out_dir` when the block ends.
+
+    The temporary directory sits beside `out_dir`, so the final renames stay on one
+    filesystem. On normal exit an existing `out_dir` is renamed aside, the new one
+    renamed in, and the old one deleted; if the second rename fails the old one is
+    put back. On any exception (KeyboardInterrupt included) the temporary directory
+    is deleted and `out_dir` is left as it was.
+
+    Raises:
+      ProjectError: `out_dir` exists and is neither an empty directory nor a
+        netbuild build (so it is never replaced by mistake), or cannot be written.
+    """
+    out = Path(out_dir).absolute()
+    if out.exists() and not (out.is_dir() and (_is_build(out) or not any(out.iterdir()))):
+        raise ProjectError(f"output {out} exists and is not a netbuild build directory",
+                           "choose another --out, or remove it first", path=str(out))
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
+    except OSError as err:
+        raise ProjectError(f"cannot create the output directory ({err.strerror})",
+                           "choose a writable --out", path=str(out)) from err
+    try:
+        yield tmp
+        _publish_modes(tmp)
+        old = None
+        if out.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+            os.rename(out, old / "previous")  # rename aside, then in: never no directory
+        try:
+            os.rename(tmp, out)
+        except BaseException:
+            if old is not None:
+                os.rename(old / "previous", out)
+            raise
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+@contextlib.contextmanager
+def _sigterm_raises() -> Iterator[None]:
+    """Turns SIGTERM into KeyboardInterrupt while the block runs (main thread only)."""
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum, frame):  # noqa: ARG001
+        raise KeyboardInterrupt("terminated")
+
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+# --- building ---------------------------------------------------------------------------
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _input_record(path: Path | None) -> dict[str, str] | None:
+    return None if path is None else {"path": str(path), "sha256": _sha256(path)}
+
+
+def _stage_json(record: StageRecord) -> dict[str, Any]:
+    return {"name": record.name, "states": int(record.states), "arcs": int(record.arcs),
+            "seconds": float(record.seconds), "peak_rss_bytes": int(record.peak_rss_bytes),
+            "details": dict(getattr(record, "details", None) or {})}
+
+
+def _write_symbols(table: pynini.SymbolTable, path: Path) -> None:
+    table.write_text(str(path))
+
+
+def build(project: Project, out_dir: str | os.PathLike,
+          progress: Progress | None = None) -> BuildResult:
+    """Compiles `project` and writes the output directory `out_dir` atomically.
+
+    Reads and checks the inputs (all problems raised together), restricts the model's
+    vocabulary to the lexicon per the OOV policy, builds G and L, runs the pipeline to
+    the word-level graph, and writes the directory described in the module docstring.
+
+    Args:
+      project: inputs and options.
+      out_dir: the output directory; replaced only when the new one is complete.
+      progress: called with each `StageRecord` as its stage finishes.
+
+    Returns:
+      A `BuildResult` with the manifest as written.
+
+    Raises:
+      InputError: problems in the inputs (every problem of every input).
+      StageError: a stage failed or hit a resource limit.
+      CheckFailed: a stage check failed (a netbuild bug).
+      KeyboardInterrupt: interrupted (or SIGTERM); the previous `out_dir` is untouched.
+    """
+    with _sigterm_raises():
+        diag = Diagnostics()
+        inputs = read_inputs(project, diag)
+        diag.raise_if_errors()
+        assert inputs is not None  # no errors means every input was read
+        opts = project.options
+        model, vocabulary = restrict_vocabulary(inputs.model, inputs.lexicon.words(),
+                                                opts.grammar.oov_policy)
+        started = time.perf_counter()
+        grammar = build_grammar(model)
+        built = {"grammar": time.perf_counter() - started}
+        started = time.perf_counter()
+        lexicon = build_lexicon(inputs.lexicon, inputs.inventory, grammar.word_symbols,
+                                opts.lexicon)
+        built["lexicon"] = time.perf_counter() - started
+
+        def on_stage(record: StageRecord) -> None:
+            # The pipeline times only the checks of its input FSTs; add their build.
+            if record.name in built:
+                seconds = built.pop(record.name)
+                record.details["build_seconds"] = seconds
+                record.seconds += seconds
+            if progress is not None:
+                progress(record)
+
+        graph = build_word_graph(lexicon, grammar, opts, on_stage)
+        input_symbols = lexicon.phone_symbols
+        manifest: dict[str, Any] = {
+            "format": MANIFEST_FORMAT,
+            "version": __version__,
+            "graph": GRAPH_FILE,
+            "word_symbols": WORD_SYMBOLS_FILE,
+            "input_symbols": INPUT_SYMBOLS_FILE,
+            "intermediates": {"grammar": GRAMMAR_FILE, "lexicon": LEXICON_FILE,
+                              "wordgraph": GRAPH_FILE},
+            "stages": [_stage_json(s) for s in graph.stages],
+            "inputs": {"lexicon": _input_record(project.lexicon),
+                       "lm": _input_record(project.lm),
+                       "phones": _input_record(project.phones)},
+            "auxiliary_markers": [input_symbols.find(i)
+                                  for i in range(input_symbols.available_key())
+                                  if input_symbols.member(i)
+                                  and is_auxiliary(input_symbols.find(i))],
+            "markers": {"count": int(lexicon.num_markers),
+                        "words": sorted({m.word for m in lexicon.markers})},
+            "vocabulary": {
+                "dropped": list(vocabulary.dropped),
+                "mapped_to_unk": list(vocabulary.mapped_to_unk),
+                "removed_unigram_mass": float(vocabulary.removed_unigram_mass),
+            },
+            "options": dataclasses.asdict(opts),
+        }
+        with atomic_directory(out_dir) as tmp:
+            write_fst(graph.fst, tmp / GRAPH_FILE, opts.fst_type)
+            write_fst(grammar.fst, tmp / GRAMMAR_FILE, "vector")
+            write_fst(lexicon.fst, tmp / LEXICON_FILE, "vector")
+            _write_symbols(grammar.word_symbols, tmp / WORD_SYMBOLS_FILE)
+            _write_symbols(input_symbols, tmp / INPUT_SYMBOLS_FILE)
+            (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2) + "\n",
+                                        encoding="utf-8")
+        return BuildResult(Path(out_dir), manifest, list(graph.stages), diag.warnings)
+
+
+# --- loading ----------------------------------------------------------------------------
+
+def load_build(directory: str | os.PathLike) -> LoadedBuild:
+    """Reads an output directory written by `build`.
+
+    Returns:
+      The manifest, the graph, G, L (as `pynini.Fst`, so mutable vector copies) and
+      the two symbol tables, attached to the FSTs (graph: input/word; G: word/word;
+      L: input/word).
+
+    Raises:
+      InputError: the directory is not a build, or a file it names is missing or broken.
+    """
+    d = Path(directory)
+    where = str(d)
+    if not d.is_dir():
+        raise InputError("not a directory", "give the directory written by 'netbuild build'",
+                         path=where)
+    manifest_path = d / MANIFEST
+    try:
+        manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise InputError(f"not a netbuild build directory (no {MANIFEST})",
+                         "give the directory written by 'netbuild build --out'",
+                         path=where) from None
+    except (OSError, ValueError) as err:
+        raise InputError(f"{MANIFEST} is unreadable ({err})",
+                         "rebuild the directory with 'netbuild build'",
+                         path=str(manifest_path)) from err
+    if not isinstance(manifest, dict) or manifest.get("format") != MANIFEST_FORMAT:
+        raise InputError(f"{MANIFEST} is not a netbuild build manifest",
+                         "rebuild the directory with 'netbuild build'", path=str(manifest_path))
+
+    def named(key: str, sub: str | None = None) -> Path:
+        value = manifest.get(key) if sub is None else (manifest.get(key) or {}).get(sub)
+        if not isinstance(value, str):
+            raise InputError(f"{MANIFEST} has no '{sub or key}' entry",
+                             "rebuild the directory with 'netbuild build'",
+                             path=str(manifest_path))
+        return d / value
+
+    def read_fst(path: Path) -> pynini.Fst:
+        try:
+            return pynini.Fst.read(str(path))
+        except (pywrapfst.FstError, OSError) as err:
+            raise InputError(f"cannot read the FST ({err})",
+                             "rebuild the directory with 'netbuild build'",
+                             path=str(path)) from err
+
+    def read_table(path: Path) -> pynini.SymbolTable:
+        if not path.is_file():
+            raise InputError("symbol table is missing",
+                             "rebuild the directory with 'netbuild build'", path=str(path))
+        try:
+            return pynini.SymbolTable.read_text(str(path))
+        except (pywrapfst.FstError, OSError, RuntimeError) as err:
+            raise InputError(f"cannot read the symbol table ({err})",
+                             "rebuild the directory with 'netbuild build'",
+                             path=str(path)) from err
+
+    for key, sub in (("graph", None), ("intermediates", "grammar"),
+                     ("intermediates", "lexicon")):
+        p = named(key, sub)
+        if not p.is_file():
+            raise InputError("FST file is missing", "rebuild the directory with "
+                             "'netbuild build'", path=str(p))
+    words = read_table(named("word_symbols"))
+    phones = read_table(named("input_symbols"))
+    graph = read_fst(named("graph"))
+    grammar = read_fst(named("intermediates", "grammar"))
+    lexicon = read_fst(named("intermediates", "lexicon"))
+    graph.set_input_symbols(phones)
+    graph.set_output_symbols(words)
+    grammar.set_input_symbols(words)
+    grammar.set_output_symbols(words)
+    lexicon.set_input_symbols(phones)
+    lexicon.set_output_symbols(words)
+    return LoadedBuild(d, manifest, graph, grammar, lexicon, words, phones)
+
+
+__all__ = ["BuildResult", "Inputs", "LoadedBuild", "atomic_directory", "build",
+           "check_inputs", "load_build", "missing_pronunciations", "read_inputs"]
