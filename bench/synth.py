@@ -15,8 +15,11 @@ arguments give byte-identical files.
 The model: unigrams follow a Zipf-like law over the word ranks (word i is rank i); each
 higher order k samples its histories among the (k-1)-grams weighted by their joint
 probability (so frequent contexts repeat) and its predicted words from the unigram law.
-A share `hole_share` of the k-grams (k >= 3) gets a history that is *not* a (k-1)-gram
-(a "hole"; its back-off weight is 1 by the format's rule). Probabilities come from
+Most k-grams (k >= 3) predict a word that continues their history's suffix (so the
+suffix (k-1)-gram exists, as in a model estimated from counts); a share
+`suffix_miss_share` does not. A share `hole_share` of the k-grams gets a history that
+is *not* a (k-1)-gram (a "hole"; its back-off weight is 1 by the format's rule); hole
+histories are taken among the missed suffixes, so each is still reached by a k-gram. Probabilities come from
 made-up counts with Witten-Bell-style reserved mass T/(C+T) per history; each history's
 back-off weight is then set by the Katz rule
 
@@ -437,18 +440,18 @@ def synth_arpa(n_words: int, n_ngrams: int, *, order: int = 3, seed: int = 0,
         hist_rows, w = pairs // base, pairs % base
         ids = np.concatenate([prev.ids[hist_rows], w[:, None]], axis=1)
         if n_holes:
-            # Hole histories: an existing history with its oldest word replaced; about
-            # three n-grams each, so hole contexts repeat too.
-            n_hist = max(1, n_holes // 3)
-            src = prev.ids[usable[_draw(rng, hist_cdf, n_hist * 4 + 8, shuffle=True)]]
-            src = src.copy()
-            src[:, 0] = rng.choice(base, size=len(src), p=hist_p)
-            cand = np.unique(_keys(src, base))
-            found, _ = _lookup(prev.keys, cand)
-            hole_keys = cand[~found]
-            if len(hole_keys) == 0:
-                raise ValueError("could not draw hole histories; lower hole_share")
-            hole_keys = hole_keys[:n_hist]
+            # Hole histories: suffixes of the k-grams just drawn that are not (k-1)-grams
+            # (the suffix misses). Such a history is reached through the k-gram it ends,
+            # as after pruning a (k-1)-gram whose continuations were kept. About three
+            # n-grams each, so hole contexts repeat too.
+            suffix = ids[:, 1:]
+            sfound, _ = _lookup(prev.keys, _keys(suffix, base))
+            cand = np.unique(_keys(suffix[~sfound & (suffix[:, -1] != EOS)], base))
+            if len(cand) == 0:
+                raise ValueError("no hole histories can be drawn; raise suffix_miss_share "
+                                 "or set hole_share to 0")
+            n_hist = min(len(cand), max(1, n_holes // 3))
+            hole_keys = np.sort(rng.choice(cand, size=n_hist, replace=False))
             hole_ctx = np.stack([(hole_keys // base**(k - 2 - j)) % base
                                  for j in range(k - 1)], axis=1)
             hole_lo, hole_hi = cont_range(hole_ctx)

@@ -13,7 +13,9 @@ Commands (``netbuild COMMAND --help`` shows every option):
 - ``score --graph DIR [SENTENCE...]``: the language-model cost and the graph's best
   path cost of each sentence; ``--json`` prints a list of
   ``{"sentence", "lm_cost", "best_path_cost", "oov"}`` (infinite costs as null).
-- ``estimate --text F -o OUT.arpa``: estimates a back-off model from sentences.
+- ``estimate --text F -o OUT.arpa``: estimates a back-off model from sentences
+  (gzip-compressed when OUT ends in .gz); ``--json`` prints
+  ``{"output", "order", "counts", "sentences", "vocabulary_size"}``.
 
 Errors are handled in one place (`_Group.main`): netbuild's own errors print a
 message without a traceback (an `InputError` one located problem per line) and exit 1,
@@ -171,7 +173,7 @@ def _megabytes(n: int) -> str:
     return f"{n / 2**20:.0f} MiB"
 
 
-@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.group(name="netbuild", cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="netbuild")
 def cli() -> None:
     """Compiles speech-recognition decoding graphs from a lexicon and a language model."""
@@ -187,7 +189,11 @@ def check(project_file, as_json, **flags) -> None:
     """Reads every input and lists every problem (exit 1 on any error)."""
     from .workflow import check_inputs
 
-    diag: Diagnostics = check_inputs(_project(project_file, **flags))
+    try:
+        diag: Diagnostics = check_inputs(_project(project_file, **flags))
+    except InputError as err:  # the project itself is broken: report it the same way
+        diag = Diagnostics()
+        diag.problems.extend(err.problems)
     if as_json:
         _echo_json({"errors": [p.to_json() for p in diag.errors],
                     "warnings": [p.to_json() for p in diag.warnings]})
@@ -250,31 +256,14 @@ def build(project_file, out_dir, fast, as_json, **flags) -> None:
 def stats(file: Path, as_json: bool) -> None:
     """Prints the size and properties of an FST file (or a build directory's graph)."""
     from .inspectors.stats import format_stats_table, fst_stats
-    from .workflow import read_fst_file
+    from .workflow import plain_json, read_fst_file
 
     fst = read_fst_file(file)
     result = fst_stats(fst)
     if as_json:
-        _echo_json(_jsonable(result))
+        _echo_json(plain_json(result))
     else:
         click.echo(format_stats_table(result))
-
-
-def _jsonable(value: Any) -> Any:
-    """Converts dataclasses, numpy scalars and infinities into JSON values."""
-    import dataclasses
-
-    if dataclasses.is_dataclass(value) and not isinstance(value, type):
-        return {k: _jsonable(v) for k, v in dataclasses.asdict(value).items()}
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if hasattr(value, "item") and callable(value.item):  # numpy scalar
-        value = value.item()
-    if isinstance(value, float) and not math.isfinite(value):
-        return None
-    return value
 
 
 # --- score ------------------------------------------------------------------------
@@ -328,20 +317,22 @@ def _cost(value: float | None) -> str:
               help="The n-gram order.")
 @click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="The ARPA file to write (atomically).")
+@click.option("--unk", is_flag=True, help="Give <unk> a small probability too.")
 @click.option("--json", "as_json", is_flag=True, help="Print a summary as JSON.")
-def estimate(text_file: Path, order: int, output: Path, as_json: bool) -> None:
+def estimate(text_file: Path, order: int, output: Path, unk: bool, as_json: bool) -> None:
     """Estimates a back-off n-gram model from sentences and writes it as ARPA."""
     from .io.arpa import write_arpa
     from .lm.estimate import estimate as run_estimate
     from .lm.estimate import read_sentences
 
     sentences = read_sentences(text_file)
-    model = run_estimate(sentences, order)
+    model = run_estimate(sentences, order, unk=unk)
     directory = output.absolute().parent
     if not directory.is_dir():
         raise InputError("the output directory does not exist", "create it first",
                          path=str(directory))
-    fd, tmp = tempfile.mkstemp(prefix=f".{output.name}.", suffix=".tmp", dir=directory)
+    # The temporary name keeps the output's ending: write_arpa compresses '.gz' names.
+    fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=f".{output.name}", dir=directory)
     os.close(fd)
     try:
         write_arpa(model, tmp)

@@ -5,7 +5,9 @@
 - `build(project, out_dir, progress=None)`: compiles L, G and the word-level graph and
   writes the output directory atomically; returns a `BuildResult`.
 - `load_build(directory)`: reads an output directory back as a `LoadedBuild`.
+- `read_fst_file(path)`: one FST file (stored type kept), or a build directory's graph.
 - `atomic_directory(out_dir)`: the context manager behind the atomic write.
+- `plain_json(value)`: dataclasses, numpy scalars and infinities as plain JSON data.
 
 Output directory (every name relative to it)::
 
@@ -47,9 +49,11 @@ import contextlib
 import dataclasses
 import hashlib
 import json
+import math
 import os
 import shutil
 import signal
+import struct
 import tempfile
 import threading
 import time
@@ -64,14 +68,14 @@ from . import __version__
 from .builders.grammar import build_grammar
 from .builders.lexicon import build_lexicon
 from .builders.vocabulary import restrict_vocabulary
-from .errors import Diagnostics, InputError, ProjectError
+from .errors import Diagnostics, InputError, Problem, ProjectError
 from .io.arpa import ArpaModel, read_arpa
 from .io.fstfile import write_fst
 from .io.lexicon import Lexicon, read_lexicon
 from .io.phones import PhoneInventory, inventory_from_lexicon, read_phones
-from .pipeline import StageRecord, build_word_graph
+from .pipeline import StageRecord, WordGraph, build_word_graph
 from .project import Project, require_inputs
-from .symbols import SENTENCE_END, SENTENCE_START, is_auxiliary
+from .symbols import SENTENCE_END, SENTENCE_START, UNKNOWN, is_auxiliary
 
 MANIFEST = "manifest.json"
 MANIFEST_FORMAT = "netbuild-build"
@@ -96,12 +100,14 @@ class Inputs:
 
 @dataclasses.dataclass
 class BuildResult:
-    """What `build` wrote: the directory, its manifest and the stage records."""
+    """What `build` wrote: the directory, its manifest, the stage records, the warnings
+    found while reading the inputs, and the FSTs (`graph.intermediates` holds G and L)."""
 
     out_dir: Path
     manifest: dict[str, Any]
     stages: list[StageRecord]
-    warnings: list[Any]
+    warnings: list[Problem]
+    graph: WordGraph
 
 
 @dataclasses.dataclass
@@ -151,6 +157,12 @@ def _report_oov(diag: Diagnostics, project: Project, model: ArpaModel,
         diag.error(str(project.lm), None, what,
                    "add their pronunciations to the lexicon, or set [grammar] oov_policy "
                    "to \"drop\" or \"unk\"")
+    elif policy == "unk" and UNKNOWN not in lexicon.words():
+        diag.error(str(project.lm), None,
+                   what + f"; policy \"unk\" maps them to {UNKNOWN}, but the lexicon has "
+                   f"no {UNKNOWN} pronunciation",
+                   f"add a pronunciation for {UNKNOWN} (e.g. a noise phone), or set "
+                   "[grammar] oov_policy to \"drop\"")
     elif policy == "unk":
         diag.warning(str(project.lm), None, what + "; they are mapped to <unk>",
                      "add their pronunciations to keep them as words")
@@ -311,10 +323,29 @@ def _input_record(path: Path | None) -> dict[str, str] | None:
     return None if path is None else {"path": str(path), "sha256": _sha256(path)}
 
 
+def plain_json(value: Any) -> Any:
+    """Returns `value` as plain JSON data: dataclasses and mappings become objects,
+    sequences lists, numpy scalars Python numbers, infinities and NaN null, and any
+    other object its `str`."""
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        value = dataclasses.asdict(value)
+    if isinstance(value, dict):
+        return {str(k): plain_json(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple, set, frozenset)):
+        return [plain_json(v) for v in value]
+    if hasattr(value, "item") and callable(value.item) and not isinstance(value, str):
+        value = value.item()  # numpy scalar
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if value is None or isinstance(value, (bool, int, str)):
+        return value
+    return str(value)
+
+
 def _stage_json(record: StageRecord) -> dict[str, Any]:
     return {"name": record.name, "states": int(record.states), "arcs": int(record.arcs),
             "seconds": float(record.seconds), "peak_rss_bytes": int(record.peak_rss_bytes),
-            "details": dict(getattr(record, "details", None) or {})}
+            "details": plain_json(getattr(record, "details", None) or {})}
 
 
 def _write_symbols(table: pynini.SymbolTable, path: Path) -> None:
@@ -349,7 +380,7 @@ def build(project: Project, out_dir: str | os.PathLike,
         diag.raise_if_errors()
         assert inputs is not None  # no errors means every input was read
         opts = project.options
-        model, vocabulary = restrict_vocabulary(inputs.model, inputs.lexicon.words(),
+        model, vocabulary = restrict_vocabulary(inputs.model, set(inputs.lexicon.words()),
                                                 opts.grammar.oov_policy)
         started = time.perf_counter()
         grammar = build_grammar(model)
@@ -393,7 +424,7 @@ def build(project: Project, out_dir: str | os.PathLike,
                 "mapped_to_unk": list(vocabulary.mapped_to_unk),
                 "removed_unigram_mass": float(vocabulary.removed_unigram_mass),
             },
-            "options": dataclasses.asdict(opts),
+            "options": plain_json(opts),
         }
         with atomic_directory(out_dir) as tmp:
             write_fst(graph.fst, tmp / GRAPH_FILE, opts.fst_type)
@@ -403,23 +434,60 @@ def build(project: Project, out_dir: str | os.PathLike,
             _write_symbols(input_symbols, tmp / INPUT_SYMBOLS_FILE)
             (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2) + "\n",
                                         encoding="utf-8")
-        return BuildResult(Path(out_dir), manifest, list(graph.stages), diag.warnings)
+        return BuildResult(Path(out_dir), manifest, list(graph.stages), diag.warnings,
+                           graph)
 
 
-# --- loading ----------------------------------------------------------------------------
+# --- loading ---------------------------------------------------------------------------
 
-def load_build(directory: str | os.PathLike) -> LoadedBuild:
-    """Reads an output directory written by `build`.
+_FST_MAGIC = struct.pack("<i", 2125659606)  # OpenFst binary header magic (fst/fst.h)
 
-    Returns:
-      The manifest, the graph, G, L (as `pynini.Fst`, so mutable vector copies) and
-      the two symbol tables, attached to the FSTs (graph: input/word; G: word/word;
-      L: input/word).
+
+def _is_fst_file(path: Path) -> bool:
+    """True when `path` starts with OpenFst's magic number (checked before OpenFst reads
+    it, so a wrong file gives our message rather than OpenFst's log lines)."""
+    try:
+        with open(path, "rb") as f:
+            return f.read(4) == _FST_MAGIC
+    except OSError:
+        return False
+
+
+def read_fst_file(path: str | os.PathLike) -> pywrapfst.Fst:
+    """Reads an FST file keeping its stored type (vector or const), or a build's graph.
+
+    Args:
+      path: an OpenFst binary file, or a directory written by `build` (its graph is
+        read, with the build's symbol tables attached).
 
     Raises:
-      InputError: the directory is not a build, or a file it names is missing or broken.
+      InputError: the file is not an OpenFst binary FST, or the directory not a build.
     """
-    d = Path(directory)
+    p = Path(path)
+    if p.is_dir():
+        manifest = _read_manifest(p)
+        graph = p / str(manifest.get("graph"))
+        fst = read_fst_file(graph)
+        for key, setter in (("input_symbols", fst.set_input_symbols),
+                            ("word_symbols", fst.set_output_symbols)):
+            table = p / str(manifest.get(key))
+            if table.is_file():
+                setter(pynini.SymbolTable.read_text(str(table)))
+        return fst
+    if not p.is_file():
+        raise InputError("FST file is missing", "check the path", path=str(p))
+    if not _is_fst_file(p):
+        raise InputError("not an OpenFst binary FST file",
+                         "give a file written by 'netbuild build' or by OpenFst", path=str(p))
+    try:
+        return pywrapfst.Fst.read(str(p))
+    except (pywrapfst.FstError, OSError) as err:
+        raise InputError(f"cannot read the FST ({err})",
+                         "give a file written by 'netbuild build' or by OpenFst",
+                         path=str(p)) from err
+
+
+def _read_manifest(d: Path) -> dict[str, Any]:
     where = str(d)
     if not d.is_dir():
         raise InputError("not a directory", "give the directory written by 'netbuild build'",
@@ -438,6 +506,22 @@ def load_build(directory: str | os.PathLike) -> LoadedBuild:
     if not isinstance(manifest, dict) or manifest.get("format") != MANIFEST_FORMAT:
         raise InputError(f"{MANIFEST} is not a netbuild build manifest",
                          "rebuild the directory with 'netbuild build'", path=str(manifest_path))
+    return manifest
+
+def load_build(directory: str | os.PathLike) -> LoadedBuild:
+    """Reads an output directory written by `build`.
+
+    Returns:
+      The manifest, the graph, G, L (as `pynini.Fst`, so mutable vector copies) and
+      the two symbol tables, attached to the FSTs (graph: input/word; G: word/word;
+      L: input/word).
+
+    Raises:
+      InputError: the directory is not a build, or a file it names is missing or broken.
+    """
+    d = Path(directory)
+    manifest = _read_manifest(d)
+    manifest_path = d / MANIFEST
 
     def named(key: str, sub: str | None = None) -> Path:
         value = manifest.get(key) if sub is None else (manifest.get(key) or {}).get(sub)
@@ -448,6 +532,9 @@ def load_build(directory: str | os.PathLike) -> LoadedBuild:
         return d / value
 
     def read_fst(path: Path) -> pynini.Fst:
+        if not _is_fst_file(path):
+            raise InputError("cannot read the FST (not an OpenFst binary file)",
+                             "rebuild the directory with 'netbuild build'", path=str(path))
         try:
             return pynini.Fst.read(str(path))
         except (pywrapfst.FstError, OSError) as err:
@@ -487,4 +574,5 @@ def load_build(directory: str | os.PathLike) -> LoadedBuild:
 
 
 __all__ = ["BuildResult", "Inputs", "LoadedBuild", "atomic_directory", "build",
-           "check_inputs", "load_build", "missing_pronunciations", "read_inputs"]
+           "check_inputs", "load_build", "missing_pronunciations", "plain_json",
+           "read_fst_file", "read_inputs"]

@@ -139,3 +139,37 @@ def test_project_key_table_flags_exist_on_the_build_command():
         assert flag in options, flag
         if section != "inputs" and _default in ("true", "false"):
             assert "--no-" + flag[2:] in options, flag
+
+
+def test_checks_page_names_every_check():
+    import netbuild.checks as checks
+
+    names = {n for n in dir(checks) if n.startswith("check_") and callable(getattr(checks, n))}
+    text = (DOCS / "checks.md").read_text(encoding="utf-8")
+    assert names, "netbuild.checks defines no check"
+    assert {n for n in names if f"`{n}`" not in text} == set()
+
+
+_CHECK_NAMES = {"non-empty": "check_nonempty", "connected": "check_connected",
+                "labels": "check_labels", "homophones": "check_homophones",
+                "back-off pass-through": "check_backoff_passthrough",
+                "no input-epsilon cycle": "check_no_input_epsilon_cycles",
+                "words reachable": "check_words_reachable",
+                "input-deterministic": "check_input_deterministic"}
+
+
+def test_checks_page_table_matches_the_pipeline():
+    """The stage table of docs/checks.md lists the pipeline's stages and their checks."""
+    import pynini
+
+    from netbuild.options import BuildOptions
+    from netbuild.pipeline import word_pipeline
+
+    text = (DOCS / "checks.md").read_text(encoding="utf-8")
+    rows = re.findall(r"^\| `(\w+)` \| [^|]+ \| ([^|]+) \|$", text, re.M)
+    documented = {stage: {_CHECK_NAMES[c.strip()] for c in checks.split(",")}
+                  for stage, checks in rows}
+    pipeline = word_pipeline(pynini.Fst(), pynini.Fst(), BuildOptions())
+    assert [stage for stage, _ in rows] == ["grammar", "lexicon", *pipeline.names]
+    for step in pipeline.steps:
+        assert documented[step.name] == {c.__name__ for c in step.checks}, step.name

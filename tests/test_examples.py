@@ -233,3 +233,59 @@ def test_kenlm_and_netbuild_read_the_same_unigrams():
         ken.NullContextWrite(state)
         assert ken.BaseScore(state, word, kenlm.State()) == pytest.approx(lp, abs=1e-5), word
     assert np.all(unigrams.logprob <= 0.0)
+
+
+@pytest.fixture(scope="module")
+def demo_build(tmp_path_factory):
+    """The demo built once, exactly as `make demo` builds it (into a temporary directory)."""
+    from netbuild.project import read_project
+    from netbuild.workflow import build, load_build
+
+    out = tmp_path_factory.mktemp("demo") / "build"
+    build(read_project(DEMO / "project.toml"), out)
+    return load_build(out)
+
+
+@pytest.mark.slow
+def test_demo_build_gives_each_homophone_its_own_marker(demo_build, lexicon):
+    from netbuild.checks import lexicon_pronunciations
+
+    words, phones = demo_build.word_symbols, demo_build.input_symbols
+    in_l = {w: {tuple(phones.find(i) for i in seq) for seq in seqs}
+            for w, seqs in ((words.find(k), v)
+                            for k, v in lexicon_pronunciations(demo_build.lexicon).items())}
+    text: dict[str, set[tuple[str, ...]]] = defaultdict(set)
+    for e in lexicon.entries:
+        text[e.word].add(e.phones)
+    assert demo_build.manifest["markers"]["count"] == max(len(g) for g in HOMOPHONES)
+    for group in HOMOPHONES:
+        for shared in set.intersection(*(text[w] for w in group)):
+            markers = []
+            for word in group:
+                # L spells the shared phones, then one marker, then optionally silence
+                found = {seq[len(shared)] for seq in in_l[word]
+                         if seq[:len(shared)] == shared
+                         and seq[len(shared) + 1:] in ((), ("quiet",))
+                         and len(seq) > len(shared)}
+                assert len(found) == 1, (word, found)
+                (marker,) = found
+                assert marker.startswith("!amb"), (word, marker)
+                markers.append(marker)
+            assert len(set(markers)) == len(group), (group, markers)
+
+
+@pytest.mark.slow
+def test_demo_graph_costs_agree_with_kenlm(demo_build):
+    """reference: kenlm Python module, `Model.score(sentence)` = log10 P(sentence </s>)
+    with <s> as the first history; netbuild's costs are -ln P, so cost = -ln(10) * score."""
+    kenlm = pytest.importorskip("kenlm")
+    from netbuild.inspectors.score import score_sentences
+
+    ken = kenlm.Model(str(DEMO / "model.arpa"))
+    sentences = ["cabin two to summit station", "cabin to two summit station",
+                 "wind is too strong for full speed", "hold hold hold all cabins hold",
+                 "write it in the log", "right"]
+    for result in score_sentences(demo_build.grammar, [s.split() for s in sentences]):
+        text = " ".join(result.sentence)
+        assert result.lm_cost == pytest.approx(-math.log(10) * ken.score(text), abs=1e-3)
+        assert result.best_path_cost <= result.lm_cost + 1e-3

@@ -96,14 +96,30 @@ def test_broken_inventory_still_checks_the_other_files(data: Path):
     assert {str(data / "phones.txt"), str(arpa)} <= files
 
 
-@pytest.mark.parametrize("policy, severity", [("fail", "error"), ("unk", "warning"),
-                                              ("drop", "warning")])
-def test_oov_policy_decides_severity(policy: str, severity: str):
-    project = apply_overrides(read_project(DATA / "project.toml"), oov_policy=policy)
+@pytest.mark.parametrize("policy, unk, severity", [
+    ("fail", False, "error"), ("unk", True, "warning"), ("unk", False, "error"),
+    ("drop", False, "warning")])
+def test_oov_policy_decides_severity(data: Path, policy: str, unk: bool, severity: str):
+    if unk:
+        with open(data / "lexicon.txt", "a") as f:
+            f.write("<unk> sil\n")
+    project = apply_overrides(read_project(data / "project.toml"), oov_policy=policy)
     diag = check_inputs(project)
     found = [p for p in diag.problems if "no pronunciation" in p.message]
     assert len(found) == 1 and found[0].severity == severity
     assert "1 word(s)" in found[0].message
+    assert ("<unk>" in found[0].message) == (policy == "unk")
+
+
+def test_unk_policy_builds_with_unk_word(data: Path, tmp_path: Path):
+    with open(data / "lexicon.txt", "a") as f:
+        f.write("<unk> sil\n")
+    project = apply_overrides(read_project(data / "project.toml"), oov_policy="unk",
+                              checks=False)
+    result = build(project, tmp_path / "u")
+    assert result.manifest["vocabulary"]["mapped_to_unk"] == ["is"]
+    assert result.manifest["vocabulary"]["dropped"] == []
+    assert load_build(tmp_path / "u").word_symbols.find("<unk>") > 0
 
 
 def test_oov_report_lists_a_few_and_the_count(data: Path):
@@ -238,17 +254,17 @@ def test_build_symbol_tables_follow_the_layout(first_build):
     assert k >= 2
 
 
-def test_loaded_graph_is_the_built_graph(first_build):
+def test_loaded_fsts_are_the_built_fsts(first_build):
+    """The files read back print exactly as the FSTs built in memory (AT&T text form)."""
     out, result = first_build
     loaded = load_build(out)
+    built = result.graph.intermediates
+    for name, fst in (("wordgraph", loaded.graph), ("grammar", loaded.grammar),
+                      ("lexicon", loaded.lexicon)):
+        assert fst.print() == built[name].print(), name
     assert loaded.graph.num_states() == result.stages[-1].states
     assert loaded.graph.output_symbols().num_symbols() == loaded.word_symbols.num_symbols()
-    # reference: OpenFst's own equivalence test of the two deterministic acceptors obtained
-    # by encoding labels; L's and G's files read back equal to fresh reads.
-    grammar = pynini.Fst.read(str(out / "grammar.fst"))
-    assert pynini.equivalent(pynini.arcsort(grammar, "ilabel"),
-                             pynini.arcsort(loaded.grammar, "ilabel"))
-    assert loaded.lexicon.num_states() == result.stages[1].states
+    assert loaded.graph.input_symbols().find("!amb1") > 0
 
 
 def test_build_const_graph(tmp_path: Path):
@@ -357,3 +373,28 @@ def test_load_build_rejects_non_builds(tmp_path: Path, first_build):
     (out / "lexicon.fst").write_bytes(b"garbage")
     with pytest.raises(InputError, match=r"lexicon\.fst: cannot read the FST"):
         load_build(out)
+
+
+def test_read_fst_file(first_build, tmp_path: Path):
+    out, result = first_build
+    graph = workflow.read_fst_file(out)
+    assert graph.num_states() == result.stages[-1].states
+    assert graph.output_symbols().find("pear") > 0 and graph.input_symbols().find("sil") > 0
+    const = tmp_path / "g.const"
+    pywrapfst.convert(pynini.Fst.read(str(out / "grammar.fst")), "const").write(str(const))
+    assert workflow.read_fst_file(const).fst_type() == "const"  # stored type kept
+    bad = tmp_path / "bad.fst"
+    bad.write_bytes(b"\x00" * 64)
+    with pytest.raises(InputError, match=r"bad\.fst: not an OpenFst binary FST file; give"):
+        workflow.read_fst_file(bad)
+    with pytest.raises(InputError, match="FST file is missing"):
+        workflow.read_fst_file(tmp_path / "none.fst")
+
+
+def test_plain_json():
+    import numpy as np
+    value = {"a": np.int64(3), "b": (1.5, float("inf")), "c": {1: np.float32(0.5)},
+             "d": Path("/x"), "e": None}
+    assert workflow.plain_json(value) == {"a": 3, "b": [1.5, None], "c": {"1": 0.5},
+                                          "d": "/x", "e": None}
+    json.dumps(workflow.plain_json(value), allow_nan=False)

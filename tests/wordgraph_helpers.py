@@ -102,3 +102,30 @@ def to_log(fst: pynini.Fst) -> pynini.Fst:
 
 __all__ = ["EPSILON", "HandGrammar", "bigram_grammar", "demo_case", "lexicon_for",
            "to_log", "word_table"]
+
+
+def normalized_bigram(words: list[str], rng, followers: int = 3,
+                      end_probability: float = 0.2) -> HandGrammar:
+    """A random bigram back-off model whose distributions each sum to one.
+
+    Every history sees up to `followers` words (or </s>) with 70 % of its mass; alpha
+    spreads the rest over the unseen words' unigram mass (the usual back-off
+    normalization). `rng` is a `random.Random`.
+    """
+    targets = [*words, SENTENCE_END]
+    raw = {w: rng.uniform(0.5, 1.5) for w in words}
+    total = sum(raw.values())
+    unigram = {w: (1 - end_probability) * raw[w] / total for w in words}
+    unigram[SENTENCE_END] = end_probability
+    bigram: dict[tuple[str, str], float] = {}
+    backoff: dict[str, float] = {}
+    for h in [SENTENCE_START, *words]:
+        seen = rng.sample(targets, min(followers, len(targets)))
+        if h == SENTENCE_START and seen == [SENTENCE_END]:
+            seen = [words[0]]
+        shares = [rng.uniform(0.5, 1.5) for _ in seen]
+        for w, share in zip(seen, shares):
+            bigram[(h, w)] = 0.7 * share / sum(shares)
+        unseen_mass = 1.0 - sum(unigram[w] for w in seen)
+        backoff[h] = 0.3 / unseen_mass if unseen_mass > 1e-9 else 1e-3
+    return bigram_grammar(words, unigram, bigram, backoff)

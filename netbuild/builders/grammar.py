@@ -27,6 +27,13 @@ n-gram, and for full-length n-grams, which never back off). Following G determin
 every sentence exactly; the cheapest path may be lower where a back-off path undercuts an
 explicit n-gram, as in every back-off automaton.
 
+Holes are filled. A hole h = (p, w) is reachable only through an arc p --w--> h, but the
+model has no n-gram (p, w) to give that arc. So every hole gets one, weighted by the
+back-off rule's own value of P(w | p) (its back-off weight stays 0), and its prefix p
+becomes a history too (possibly a hole one level down, filled the same way). Without
+this, reading w in state p would back off and forget the context the model keeps for
+the next word.
+
 -99 entries (log10 probability 0 written as -99) keep their numeric cost 99 ln 10.
 
 Keys: an id tuple of length L is packed into one int64 (bit fields, oldest word first)
@@ -65,7 +72,8 @@ class GrammarResult:
 
     `num_histories` counts G's states (every history, the empty one included);
     `folded_ngrams` counts word arcs whose weight absorbed non-zero back-off weights of
-    skipped suffixes, `folded_backoffs` the same for back-off arcs.
+    skipped suffixes, `folded_backoffs` the same for back-off arcs; `filled_holes`
+    counts histories that are no n-gram of the model and got an arc of their own.
     """
 
     fst: pynini.Fst
@@ -73,6 +81,7 @@ class GrammarResult:
     num_histories: int
     folded_ngrams: int
     folded_backoffs: int = 0
+    filled_holes: int = 0
 
 
 def _words(model: ArpaModel) -> list[str]:
@@ -134,12 +143,45 @@ class _Packer:
         return keys.view(">u4").reshape(-1, length).astype(np.int32)
 
 
+def _sort_order(keys: np.ndarray) -> np.ndarray:
+    """A permutation sorting non-negative int64 `keys` (ties in any order).
+
+    Sorting `key << b | index` as plain int64 is several times faster than argsort; it
+    is used when key and index fit into 63 bits together.
+    """
+    n = keys.shape[0]
+    if keys.dtype == np.int64 and n:
+        index_bits = max(1, int(n - 1).bit_length())
+        top = int(keys.max())
+        if top >= 0 and int(keys.min()) >= 0 and top.bit_length() + index_bits <= 63:
+            packed = keys << index_bits
+            packed |= np.arange(n, dtype=np.int64)
+            packed.sort()
+            packed &= (1 << index_bits) - 1
+            return packed
+    return np.argsort(keys)
+
+
+def _unique_inverse(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sorted unique keys and, for each key, its index among them (as np.unique)."""
+    if keys.shape[0] == 0:
+        return keys[:0], np.zeros(0, dtype=np.int64)
+    order = _sort_order(keys)
+    ordered = keys[order]
+    new = np.empty(ordered.shape[0], dtype=bool)
+    new[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=new[1:])
+    inverse = np.empty(keys.shape[0], dtype=np.int64)
+    inverse[order] = np.cumsum(new) - 1
+    return ordered[new], inverse
+
+
 def _lookup(sorted_keys: np.ndarray, queries: np.ndarray) -> np.ndarray:
     """Index of each query in `sorted_keys`, -1 where absent."""
     if sorted_keys.shape[0] == 0 or queries.shape[0] == 0:
         return np.full(queries.shape[0], -1, dtype=np.int64)
     # Sorted queries make the binary searches cache-friendly.
-    order = np.argsort(queries, kind="stable")
+    order = _sort_order(queries)
     pos = np.empty(queries.shape[0], dtype=np.int64)
     pos[order] = np.searchsorted(sorted_keys, queries[order])
     np.minimum(pos, sorted_keys.shape[0] - 1, out=pos)
@@ -153,9 +195,13 @@ class _Level:
     keys: np.ndarray | None  # sorted unique keys (None for length 1: ids are word ids)
     state: np.ndarray  # G state of each entry, -1 where not a history
     alpha: np.ndarray  # log10 back-off weight of each entry (0 where none)
+    logprob: np.ndarray  # log10 probability of each n-gram entry (-inf elsewhere)
+    ngram: np.ndarray  # True for n-grams of the model and for filled holes
 
 
 class _Histories:
+    """The history states of G, level by level (level L: id tuples of length L)."""
+
     def __init__(self, model: ArpaModel) -> None:
         self.model = model
         self.packer = _Packer(max(len(model.vocab), 1))
@@ -164,42 +210,88 @@ class _Histories:
         widx = model.word_index()
         self.bos = widx.get(SENTENCE_START, -1)
         self.eos = widx.get(SENTENCE_END, -1)
+        top = self.order - 1
+        pack = self.packer.pack
+        # Top-down: the contexts of each level, and the holes among them (contexts that
+        # are no n-gram); a hole's own context is a context one level down.
+        contexts: list[np.ndarray | None] = [None] * (top + 1)
+        holes: list[np.ndarray | None] = [None] * (top + 1)
+        ctx_rows = model.orders[top].words[:, :top] if top >= 1 else None
+        for length in range(top, 0, -1):
+            ngram_keys = np.sort(pack(model.orders[length - 1].words))
+            ctx_keys = np.unique(pack(ctx_rows))
+            if length == 1 and self.bos >= 0:
+                ctx_keys = np.union1d(ctx_keys, np.array([self.bos], dtype=np.int64))
+            contexts[length] = ctx_keys
+            hole_keys = ctx_keys[_lookup(ngram_keys, ctx_keys) < 0]
+            holes[length] = hole_keys
+            if length > 1:
+                hole_rows = self.packer.unpack(hole_keys, length)
+                ctx_rows = np.concatenate([model.orders[length - 1].words[:, :length - 1],
+                                           hole_rows[:, :length - 1]])
+        # Bottom-up: one level per history length, holes filled by the back-off rule.
         self.levels: list[_Level | None] = [None]
-        # ctx_ids[n]: id (in level n-1) of the context of each n-gram of order n.
-        self.ctx_ids: list[np.ndarray | None] = [None, None]
-        self.own_ids: list[np.ndarray | None] = [None]
+        self.filled = 0
         n_states = 1  # state 0: the empty history
-        for length in range(1, self.order):
+        for length in range(1, top + 1):
             ngrams = model.orders[length - 1]
-            higher = model.orders[length]
             if length == 1:
                 keys = None
-                own = ngrams.words[:, 0].astype(np.int64)
-                ctx = higher.words[:, 0].astype(np.int64)
                 size = vocab_size
+                own = ngrams.words[:, 0].astype(np.int64)
+                hole_ids = holes[1].astype(np.int64)
+                ctx_ids = contexts[1].astype(np.int64)
             else:
-                both = np.concatenate([self.packer.pack(ngrams.words),
-                                       self.packer.pack(higher.words[:, :length])])
-                keys, inverse = np.unique(both, return_inverse=True)
-                inverse = inverse.ravel()
-                own, ctx = inverse[:len(ngrams)], inverse[len(ngrams):]
+                keys, inverse = _unique_inverse(np.concatenate([pack(ngrams.words),
+                                                                holes[length]]))
                 size = keys.shape[0]
-            alpha = np.zeros(size, dtype=np.float64)
-            alpha[own] = ngrams.backoff
-            is_hist = np.zeros(size, dtype=bool)
-            is_hist[ctx] = True
-            if length == 1 and self.bos >= 0:
-                is_hist[self.bos] = True
-            state = np.full(size, -1, dtype=np.int64)
-            count = int(is_hist.sum())
-            state[is_hist] = np.arange(n_states, n_states + count)
+                own, hole_ids = inverse[:len(ngrams)], inverse[len(ngrams):]
+                ctx_ids = _lookup(keys, contexts[length])
+            level = _Level(keys, np.full(size, -1, dtype=np.int64),
+                           np.zeros(size, dtype=np.float64),
+                           np.full(size, -np.inf, dtype=np.float64),
+                           np.zeros(size, dtype=bool))
+            level.alpha[own] = ngrams.backoff
+            level.logprob[own] = ngrams.logprob
+            level.ngram[own] = True
+            count = ctx_ids.shape[0]
+            level.state[ctx_ids] = np.arange(n_states, n_states + count)
             n_states += count
-            self.levels.append(_Level(keys, state, alpha))
-            self.own_ids.append(own)
-            self.ctx_ids.append(ctx)
+            self.levels.append(level)
+            if length > 1 and hole_ids.size:
+                rows = self.packer.unpack(holes[length], length)
+                level.logprob[hole_ids] = self._rule_log10(rows)
+                level.ngram[hole_ids] = np.isfinite(level.logprob[hole_ids])
+                self.filled += int(hole_ids.size)
         self.num_states = n_states
         self.start = int(self.levels[1].state[self.bos]) if (
-            self.bos >= 0 and len(self.levels) > 1) else 0
+            self.bos >= 0 and top >= 1) else 0
+
+    def _rule_log10(self, rows: np.ndarray) -> np.ndarray:
+        """log10 P(last word | the others) by the back-off rule, from the lower levels."""
+        m, length = rows.shape
+        cost = np.zeros(m)
+        done = np.zeros(m, dtype=bool)
+        for j in range(length):
+            pending = np.flatnonzero(~done)
+            if pending.size == 0:
+                break
+            if j > 0:
+                level = self.levels[length - j]
+                ids = self.find(rows[pending, j:])
+                ok = ids >= 0
+                safe = np.where(ok, ids, 0)
+                hit = ok & level.ngram[safe]
+                cost[pending[hit]] += level.logprob[safe[hit]]
+                done[pending[hit]] = True
+                pending = pending[~hit]
+            if length - 1 - j >= 1 and pending.size:
+                level = self.levels[length - 1 - j]
+                ids = self.find(rows[pending, j:length - 1])
+                ok = ids >= 0
+                cost[pending[ok]] += level.alpha[ids[ok]]
+        cost[~done] = -np.inf  # the word has no unigram
+        return cost
 
     def find(self, rows: np.ndarray) -> np.ndarray:
         """Ids of id tuples (all of one length) in their level, -1 where absent."""
@@ -278,28 +370,39 @@ def build_grammar(model: ArpaModel) -> GrammarResult:
 
     srcs, labels, weights, dsts = [], [], [], []
     folded_ngrams = 0
-    for n in range(1, model.max_order + 1):
-        table = model.orders[n - 1]
-        if len(table) == 0:
+    top = model.max_order
+    for n in range(1, top + 1):
+        if n < top:
+            # Arcs of a lower order come from the level: n-grams and filled holes.
+            level = hist.levels[n]
+            ids = np.flatnonzero(level.ngram)
+            words = (ids.reshape(-1, 1).astype(np.int32) if n == 1
+                     else hist.packer.unpack(level.keys[ids], n))
+            logprob = level.logprob[ids]
+        else:
+            ids = None
+            words = model.orders[n - 1].words
+            logprob = model.orders[n - 1].logprob
+        if words.shape[0] == 0:
             continue
-        last = table.words[:, n - 1]
+        last = words[:, n - 1]
         if n == 1:
-            src = np.zeros(len(table), dtype=np.int64)
+            src = np.zeros(words.shape[0], dtype=np.int64)
         else:
-            ctx = hist.ctx_ids[n]
-            src = hist.levels[n - 1].state[ctx]
+            src = hist.levels[n - 1].state[hist.find(words[:, :n - 1])]
         ends = last == hist.eos
-        final[src[ends]] = -LN10 * table.logprob[ends]
+        final[src[ends]] = -LN10 * logprob[ends]
         keep = np.flatnonzero(is_word[last])
-        if n < model.max_order:
-            dest, folded = hist.resolve(table.words[keep], hist.own_ids[n][keep])
+        if n < top:
+            dest, folded = hist.resolve(words[keep], ids[keep])
         else:
-            dest, folded = hist.resolve(table.words[keep, 1:])
+            dest, folded = hist.resolve(words[keep, 1:])
         folded_ngrams += int(np.count_nonzero(folded))
-        srcs.append(src[keep])
+        srcs.append(src[keep].astype(np.int32))
         labels.append(label_of[last[keep]])
-        weights.append(-LN10 * (table.logprob[keep] + folded))
-        dsts.append(dest)
+        weights.append((-LN10 * (logprob[keep] + folded)).astype(np.float32))
+        dsts.append(dest.astype(np.int32))
+        del src, dest, folded, keep
 
     folded_backoffs = 0
     for length in range(1, len(hist.levels)):
@@ -317,22 +420,28 @@ def build_grammar(model: ArpaModel) -> GrammarResult:
         else:
             dest, folded = hist.resolve(rows[:, 1:])
         folded_backoffs += int(np.count_nonzero(folded))
-        srcs.append(level.state[ids])
+        srcs.append(level.state[ids].astype(np.int32))
         labels.append(np.full(ids.size, backoff_label, dtype=np.int32))
-        weights.append(-LN10 * (level.alpha[ids] + folded))
-        dsts.append(dest)
+        weights.append((-LN10 * (level.alpha[ids] + folded)).astype(np.float32))
+        dsts.append(dest.astype(np.int32))
 
-    src = np.concatenate(srcs)
+    num_states, start, filled = hist.num_states, hist.start, hist.filled
+    del hist
+    src = np.concatenate(srcs).astype(np.int32)
+    del srcs
     ilabel = np.concatenate(labels)
-    weight = np.concatenate(weights).astype(np.float32)
-    dst = np.concatenate(dsts)
-    del srcs, labels, weights, dsts
-    order = np.argsort(src * (backoff_label + 1) + ilabel, kind="stable")
-    src, ilabel, weight, dst = src[order], ilabel[order], weight[order], dst[order]
-    del order
+    del labels
+    # (state, label) pairs are unique, so any sort order of the pairs groups and sorts.
+    order = _sort_order(src.astype(np.int64) * (backoff_label + 1) + ilabel)
+    src, ilabel = src[order], ilabel[order]
+    weight = np.concatenate(weights)[order].astype(np.float32)
+    del weights
+    dst = np.concatenate(dsts)[order].astype(np.int32)
+    del dsts, order
     olabel = np.where(ilabel == backoff_label, 0, ilabel).astype(np.int32)
     symbols = word_symbol_table(model)
-    fst = arrays_to_fst(hist.num_states, hist.start, final, src.astype(np.int32), ilabel,
-                        olabel, weight, dst.astype(np.int32), symbols, symbols)
-    return GrammarResult(fst=fst, word_symbols=symbols, num_histories=hist.num_states,
-                         folded_ngrams=folded_ngrams, folded_backoffs=folded_backoffs)
+    fst = arrays_to_fst(num_states, start, final, src, ilabel, olabel, weight, dst,
+                        symbols, symbols)
+    return GrammarResult(fst=fst, word_symbols=symbols, num_histories=num_states,
+                         folded_ngrams=folded_ngrams, folded_backoffs=folded_backoffs,
+                         filled_holes=filled)

@@ -5,8 +5,7 @@
 - `read_arpa(path, diagnostics=None)`: streamed, validating reader (plain or gzip).
 - `write_arpa(model, path)`: writes the ARPA text form (gzip when the name ends in .gz).
 
-The ARPA layout (reference: the ARPA back-off format as described in the SRILM
-`ngram-format(5)` manual page, http://www.speech.sri.com/projects/srilm/manpages/ngram-format.5.html):
+The ARPA back-off layout (an open format, described here from memory):
 free text, then a ``\\data\\`` section of ``ngram N=COUNT`` lines, then one
 ``\\N-grams:`` section per order with lines ``log10prob w1 ... wN [log10backoff]``,
 then ``\\end\\``. The highest order has no back-off column. ``-99`` is the
@@ -32,7 +31,6 @@ from collections.abc import Iterator
 from typing import BinaryIO
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
 
 from ..errors import ArpaError, Diagnostics, Problem
 from ..symbols import SENTENCE_END, SENTENCE_START
@@ -110,6 +108,7 @@ class _Vocab:
         self._index_size = -1
 
     def index(self):
+        """(table, shift, hashes, keys, lens): an open-address table of word ids by hash."""
         if self._index_size != len(self.words):
             n = len(self.words)
             keys = np.zeros((n, _MAX_KEY_BYTES), np.uint8)
@@ -119,13 +118,20 @@ class _Vocab:
                     keys[i, :len(w)] = np.frombuffer(w, np.uint8)
             x = keys.view(np.uint64)
             h = _hash_rows(x)
-            order = np.argsort(h, kind="stable")
-            self._sorted = h[order]
-            self._order = order
-            self._keys = x
-            self._lens = lens
+            bits = max(int(n * 4).bit_length(), 4)
+            shift = np.uint64(64 - bits)
+            table = np.full(1 << bits, -1, np.int32)
+            slot = (h >> shift).astype(np.int64)
+            # first word per slot wins; words sharing a slot are found through the dict
+            table[slot[::-1]] = np.arange(n, dtype=np.int32)[::-1]
+            lost = np.flatnonzero(table[slot] != np.arange(n))
+            table2 = np.full(1 << bits, -1, np.int32)
+            mask = np.uint64((1 << bits) - 1)
+            slot2 = (h[lost] & mask).astype(np.int64)
+            table2[slot2[::-1]] = lost[::-1].astype(np.int32)
+            self._index = (table, table2, shift, mask, h, x, lens)
             self._index_size = n
-        return self._sorted, self._order, self._keys, self._lens
+        return self._index
 
 
 _MUL1, _MUL2 = np.uint64(0xFF51AFD7ED558CCD), np.uint64(0xC4CEB9FE1A85EC53)
@@ -154,11 +160,21 @@ def _hash_rows(x: np.ndarray) -> np.ndarray:
     return h
 
 
-def _gather(win: np.ndarray, starts: np.ndarray, lens: np.ndarray, width: int) -> np.ndarray:
-    """The bytes of each token, zero padded to `width` columns."""
-    m = win[starts, :width]
-    m = m * (np.arange(width) < lens[:, None])
-    return m.astype(np.uint8, copy=False)
+_LENMASK = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [2**64 - 1], np.uint64)
+
+
+def _unaligned_u64(padded: bytes) -> np.ndarray:
+    """A uint64 view starting at every byte offset of `padded` (little-endian)."""
+    return np.ndarray(shape=(len(padded) - 7,), dtype="<u8", buffer=padded, strides=(1,))
+
+
+def _gather(u64: np.ndarray, starts: np.ndarray, lens: np.ndarray, width: int) -> np.ndarray:
+    """The bytes of each token as (k, width // 8) uint64, zero past the token's end."""
+    cols = width // 8
+    out = np.empty((len(starts), cols), np.uint64)
+    for j in range(cols):
+        out[:, j] = u64[starts + 8 * j] & _LENMASK[np.clip(lens - 8 * j, 0, 8)]
+    return out
 
 
 def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
@@ -174,23 +190,26 @@ def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
     out = np.empty(k)
     if k == 0:
         return out
-    width = int(min(max(lens.max(), 1), 24))
-    m = _gather(win, starts, np.minimum(lens, width), width)
-    digit = (m >= 48) & (m <= 57)
+    w = int(min(max(int(lens.max()), 1), 15))
+    m = _gather(win, starts, lens, -(-w // 8) * 8).view(np.uint8)[:, :w]
+    d = m - np.uint8(48)
+    digit = d < 10
     dot = m == 46
-    pad = np.arange(width) >= lens[:, None]
-    sign = (m[:, 0] == 45) | (m[:, 0] == 43)
-    other = ~(digit | dot | pad)
-    other[:, 0] &= ~sign
     ndig = digit.sum(1)
-    fast = (~other.any(1)) & (dot.sum(1) <= 1) & (ndig >= 1) & (ndig <= 15) & (lens <= width)
-    d = np.where(digit, m.astype(np.int64) - 48, 0)
-    power = np.cumsum(digit[:, ::-1], axis=1)[:, ::-1] - digit
-    mant = (d * (10 ** np.minimum(power, 18))).sum(1)
-    frac = (digit & (np.cumsum(dot, axis=1) > 0)).sum(1)
-    val = mant / (10.0 ** frac)
-    val[m[:, 0] == 45] *= -1.0
-    out[:] = val
+    ndot = dot.sum(1)
+    neg = m[:, 0] == 45
+    sign = neg | (m[:, 0] == 43)
+    fast = (ndig + ndot + sign == lens) & (ndot <= 1) & (ndig >= 1)
+    # All digits (sign and dot read as 0) as one integer, left-aligned in w places:
+    # every partial sum is an integer below 10**15 < 2**53, hence exact.
+    total = np.where(digit, d, 0).astype(np.float64) @ (10.0 ** np.arange(w - 1, -1, -1))
+    total /= 10.0 ** (w - np.minimum(lens, w))
+    frac = np.where(ndot == 1, lens - 1 - np.argmax(dot, axis=1), 0)
+    scale = 10.0 ** frac
+    low = np.fmod(total, scale)
+    mant = np.where(ndot == 1, low + (total - low) / 10.0, total)
+    out[:] = mant / scale
+    out[neg] *= -1.0
     slow = np.flatnonzero(~fast)
     if len(slow):
         try:
@@ -213,17 +232,22 @@ def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray
     k = len(starts)
     if k == 0:
         return np.zeros(0, np.int32)
-    vsorted, vorder, vkeys, vlens = vocab.index()
-    if len(vsorted) == 0:
+    table, table2, shift, mask, vhash, vkeys, vlens = vocab.index()
+    if len(vhash) == 0:
         return None
     maxlen = int(lens.max())
     width = min(-(-maxlen // 8) * 8, _MAX_KEY_BYTES)
-    m = _gather(win, starts, np.minimum(lens, width), width)
-    x = m.view(np.uint64)
+    x = _gather(win, starts, lens, width)
     h = _hash_rows(x)
-    pos = np.minimum(np.searchsorted(vsorted, h), len(vsorted) - 1)
-    cand = vorder[pos]
-    ok = (vsorted[pos] == h) & (vlens[cand] == lens) & (lens <= width) & (vkeys[cand, : width // 8] == x).all(1)
+    cand = np.maximum(table[(h >> shift).astype(np.int64)], 0)
+    ok = (vhash[cand] == h) & (vlens[cand] == lens) & (lens <= width)
+    miss = np.flatnonzero(~ok)
+    if len(miss):  # second choice for words that lost their slot in the first table
+        c2 = np.maximum(table2[(h[miss] & mask).astype(np.int64)], 0)
+        cand[miss] = c2
+        ok[miss] = (vhash[c2] == h[miss]) & (vlens[c2] == lens[miss]) & (lens[miss] <= width)
+    for j in range(width // 8):
+        ok &= vkeys[:, j][cand] == x[:, j]
     ids = cand.astype(np.int32)
     bad = np.flatnonzero(~ok)
     if len(bad):
@@ -676,7 +700,7 @@ def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
         return None
     off = np.cumsum(c) - c
     lens = ends - starts
-    win = sliding_window_view(a, 40)
+    win = _unaligned_u64(padded)
     lp = _parse_numbers(win, starts[off], lens[off], seg)
     if lp is None or (lp > 0).any():
         return None

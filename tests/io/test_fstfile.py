@@ -1,0 +1,159 @@
+"""Bulk FST construction through OpenFst's binary layout, and atomic FST files."""
+
+from __future__ import annotations
+
+import numpy as np
+import pynini
+import pytest
+import pywrapfst
+from hypothesis import given
+from hypothesis import strategies as st
+
+from netbuild.errors import InputError, StageError
+from netbuild.io.fstfile import arrays_to_fst, fst_to_arrays, write_fst
+from netbuild.symbols import make_symbol_table
+
+P = pynini.FstProperties
+CHECKED = (P.ACCEPTOR | P.NOT_ACCEPTOR | P.EPSILONS | P.NO_EPSILONS | P.I_EPSILONS
+           | P.NO_I_EPSILONS | P.O_EPSILONS | P.NO_O_EPSILONS | P.I_LABEL_SORTED
+           | P.NOT_I_LABEL_SORTED | P.O_LABEL_SORTED | P.NOT_O_LABEL_SORTED
+           | P.I_DETERMINISTIC | P.NON_I_DETERMINISTIC | P.O_DETERMINISTIC
+           | P.NON_O_DETERMINISTIC | P.WEIGHTED | P.UNWEIGHTED | P.TOP_SORTED
+           | P.NOT_TOP_SORTED | P.ACYCLIC | P.CYCLIC)
+
+
+@st.composite
+def fst_arrays(draw):
+    n = draw(st.integers(0, 6))
+    m = draw(st.integers(0, 12)) if n else 0
+    ints = st.integers(0, max(n - 1, 0))
+    src = draw(st.lists(ints, min_size=m, max_size=m))
+    dst = draw(st.lists(ints, min_size=m, max_size=m))
+    il = draw(st.lists(st.integers(0, 4), min_size=m, max_size=m))
+    ol = draw(st.lists(st.integers(0, 4), min_size=m, max_size=m)) \
+        if draw(st.booleans()) else il
+    w = draw(st.lists(st.sampled_from([0.0, 0.5, 1.25, 3.0]), min_size=m, max_size=m))
+    fin = draw(st.lists(st.sampled_from([np.inf, 0.0, 0.75]), min_size=n, max_size=n))
+    start = draw(st.integers(0, n - 1)) if n else -1
+    return n, start, np.array(fin, np.float32), src, il, ol, w, dst
+
+
+def python_fst(n, start, fin, src, il, ol, w, dst):
+    """The same FST built arc by arc with pynini (the slow, obvious way)."""
+    f = pynini.Fst()
+    f.add_states(n)
+    if start >= 0:
+        f.set_start(start)
+    for s in range(n):
+        if np.isfinite(fin[s]):
+            f.set_final(s, float(fin[s]))
+    for i in np.argsort(np.asarray(src, dtype=np.int64), kind="stable"):
+        f.add_arc(src[i], pynini.Arc(il[i], ol[i], w[i], dst[i]))
+    return f
+
+
+@given(fst_arrays())
+def test_arrays_to_fst_equals_arc_by_arc_construction(args):
+    # Arc-by-arc compare through OpenFst's own text printer.
+    built = arrays_to_fst(*args)
+    slow = python_fst(*args)
+    assert built.num_states() == slow.num_states() and built.start() == slow.start()
+    assert str(built) == str(slow)
+
+
+@given(fst_arrays())
+def test_header_properties_agree_with_openfst(args):
+    # reference: OpenFst's property computation (Fst.properties with test=True).
+    built = arrays_to_fst(*args)
+    known = built.properties(CHECKED, False)
+    computed = python_fst(*args).properties(CHECKED, True)
+    assert known & computed == known  # every bit claimed by the header holds
+
+
+@given(fst_arrays())
+def test_fst_to_arrays_round_trip(args):
+    n, start, fin, src, il, ol, w, dst = args
+    a = fst_to_arrays(python_fst(*args))
+    order = np.argsort(np.asarray(src, dtype=np.int64), kind="stable")
+    assert a.num_states == n and a.start == start
+    np.testing.assert_array_equal(a.final_weights, fin)
+    np.testing.assert_array_equal(a.src, np.asarray(src, dtype=np.int64)[order])
+    np.testing.assert_array_equal(a.ilabel, np.asarray(il)[order])
+    np.testing.assert_array_equal(a.olabel, np.asarray(ol)[order])
+    np.testing.assert_array_equal(a.weight, np.asarray(w, np.float32)[order])
+    np.testing.assert_array_equal(a.dst, np.asarray(dst)[order])
+    again = arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
+                          a.olabel, a.weight, a.dst)
+    assert str(again) == str(python_fst(*args))
+
+
+def test_symbol_tables_survive_both_ways():
+    words = make_symbol_table("words", ["cable", "car", "summit"])
+    f = arrays_to_fst(2, 0, np.array([np.inf, 0.0]), [0, 0], [1, 3], [2, 3], [0.5, 1.0],
+                      [1, 1], isymbols=words, osymbols=words)
+    assert f.input_symbols().find("summit") == 3
+    a = fst_to_arrays(f)  # symbol tables sit between header and arrays
+    assert a.isymbols.find("car") == 2 and a.osymbols.num_symbols() == 4
+    np.testing.assert_array_equal(a.ilabel, [1, 3])
+    np.testing.assert_array_equal(a.dst, [1, 1])
+
+
+def test_empty_fst_and_fst_without_arcs():
+    empty = arrays_to_fst(0, -1, np.zeros(0), [], [], [], [], [])
+    assert empty.num_states() == 0 and empty.start() == -1
+    a = fst_to_arrays(empty)
+    assert a.num_states == 0 and a.num_arcs == 0 and a.start == -1
+    lone = arrays_to_fst(3, 1, np.array([np.inf, 2.0, np.inf]), [], [], [], [], [])
+    assert lone.num_states() == 3 and lone.start() == 1 and float(lone.final(1)) == 2.0
+    assert fst_to_arrays(lone).num_arcs == 0
+
+
+def test_log_arcs():
+    f = arrays_to_fst(2, 0, np.array([np.inf, 0.0]), [0], [1], [1], [0.5], [1],
+                      arc_type="log")
+    assert f.arc_type() == "log"
+    assert fst_to_arrays(f).arc_type == "log"
+
+
+def test_bad_arrays_are_reported():
+    with pytest.raises(StageError, match="differ in length"):
+        arrays_to_fst(2, 0, np.zeros(2), [0], [1, 2], [1], [0.0], [1])
+    with pytest.raises(StageError, match="outside"):
+        arrays_to_fst(2, 0, np.zeros(2), [0], [1], [1], [0.0], [5])
+    with pytest.raises(StageError, match="start state"):
+        arrays_to_fst(2, 7, np.zeros(2), [], [], [], [], [])
+
+
+@pytest.mark.parametrize("fst_type", ["vector", "const"])
+def test_write_fst_is_atomic_and_readable(tmp_path, fst_type):
+    f = arrays_to_fst(2, 0, np.array([np.inf, 0.0]), [0], [1], [1], [0.5], [1])
+    target = tmp_path / "g.fst"
+    target.write_bytes(b"old")
+    write_fst(f, target, fst_type)
+    back = pywrapfst.Fst.read(str(target))
+    assert back.fst_type() == fst_type and str(back) == str(f)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["g.fst"]  # no temp file left
+
+
+def test_write_fst_errors_name_the_path(tmp_path):
+    f = arrays_to_fst(1, 0, np.zeros(1), [], [], [], [], [])
+    with pytest.raises(InputError, match="missing/g.fst: cannot write"):
+        write_fst(f, tmp_path / "missing" / "g.fst")
+    with pytest.raises(InputError, match="'compact' is unknown"):
+        write_fst(f, tmp_path / "g.fst", "compact")  # type: ignore[arg-type]
+
+
+def test_many_arcs_in_bulk():
+    rng = np.random.default_rng(5)
+    n, m = 2000, 50_000
+    src = rng.integers(0, n, m)
+    il = rng.integers(0, 300, m)
+    w = rng.random(m).astype(np.float32)
+    dst = rng.integers(0, n, m)
+    fin = np.where(rng.random(n) < 0.1, 0.0, np.inf).astype(np.float32)
+    f = arrays_to_fst(n, 0, fin, src, il, il, w, dst)
+    assert f.num_states() == n and sum(f.num_arcs(s) for s in f.states()) == m
+    a = fst_to_arrays(f)
+    order = np.argsort(src, kind="stable")
+    np.testing.assert_array_equal(a.dst, dst[order])
+    np.testing.assert_array_equal(a.weight, w[order])

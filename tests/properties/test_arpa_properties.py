@@ -1,0 +1,123 @@
+"""Hypothesis properties of the ARPA reader/writer: round trips and located corruptions."""
+
+from __future__ import annotations
+
+import numpy as np
+from hypothesis import given
+from hypothesis import strategies as st
+
+from netbuild.errors import ArpaError
+from netbuild.io.arpa import ArpaModel, NgramTable, read_arpa, write_arpa
+
+WORD = st.text(alphabet="abcdéxyz_'-0123", min_size=1, max_size=12)
+LOGP = st.one_of(st.floats(-99.0, 0.0, allow_nan=False), st.sampled_from([-99.0, 0.0, -1.5]))
+BACKOFF = st.one_of(st.just(0.0), st.floats(-5.0, 5.0, allow_nan=False))
+
+
+@st.composite
+def models(draw):
+    vocab = ["</s>", "<s>"] + draw(st.lists(WORD.filter(lambda w: w not in ("<s>", "</s>")),
+                                            min_size=1, max_size=8, unique=True))
+    order = draw(st.integers(1, 4))
+    v = len(vocab)
+    tables = []
+    for n in range(1, order + 1):
+        if n == 1:
+            rows = [(i,) for i in range(v)]
+        else:
+            rows = draw(st.lists(st.tuples(*[st.integers(0, v - 1)] * n), max_size=12,
+                                 unique=True))
+        k = len(rows)
+        lp = draw(st.lists(LOGP, min_size=k, max_size=k))
+        bo = draw(st.lists(BACKOFF, min_size=k, max_size=k)) if n < order else [0.0] * k
+        tables.append(NgramTable(n, np.array(rows, np.int32).reshape(k, n), np.array(lp, float),
+                                 np.array(bo, float), np.zeros(k, np.int64)))
+    return ArpaModel(vocab, tables)
+
+
+@given(models(), st.booleans())
+def test_round_trip_is_exact(tmp_path_factory, model, gz):
+    path = tmp_path_factory.mktemp("rt") / ("m.arpa.gz" if gz else "m.arpa")
+    write_arpa(model, path)
+    back = read_arpa(path)
+    assert back.vocab == model.vocab
+    for a, b in zip(model.orders, back.orders, strict=True):
+        assert a.words.tolist() == b.words.tolist()
+        assert a.logprob.tolist() == b.logprob.tolist()
+        assert a.backoff.tolist() == b.backoff.tolist()
+
+
+BASE = """\\data\\
+ngram 1=5
+ngram 2=4
+ngram 3=2
+
+\\1-grams:
+-1.0\t</s>
+-99\t<s>\t-0.5
+-0.5\tcabin\t-0.1
+-0.7\tridge\t-0.2
+-0.9\tvalley
+
+\\2-grams:
+-0.2\t<s> cabin\t-0.3
+-0.3\tcabin ridge\t-0.1
+-0.4\tridge </s>
+-0.5\tcabin valley
+
+\\3-grams:
+-0.1\t<s> cabin ridge
+-0.2\tcabin ridge </s>
+
+\\end\\
+"""
+LINES = BASE.split("\n")
+DATA_LINES = [i for i, t in enumerate(LINES) if t[:1] == "-"]
+HIGHER_LINES = [i for i in DATA_LINES if len(LINES[i].split("\t")[1].split()) > 1]
+KINDS = ["number", "fields", "duplicate", "end", "count", "header", "word"]
+
+
+@given(st.sampled_from(KINDS), st.sampled_from(DATA_LINES), st.integers(0, 2))
+def test_single_corruption_is_located(tmp_path_factory, kind, i, which):
+    lines = list(LINES)
+    f = lines[i].split("\t")
+    if kind == "number":
+        f[0] = ["-0.x", "nan", "--1"][which]
+        expected = i + 1
+    elif kind == "fields":
+        f = f[:1] if which else f + ["-0.1", "extra"]
+        expected = i + 1
+    elif kind == "duplicate":
+        j = i + 1 if i + 1 in DATA_LINES else i - 1  # same section; the count stays right
+        lines[j] = lines[i]
+        expected = max(i, j) + 1
+    elif kind == "end":
+        lines = lines[: lines.index("\\end\\")]
+        expected = len(lines) - 1  # the last line of the file (the text ends with '\n')
+    elif kind == "count":
+        n = [1, 2, 3][which]
+        lines[n] = f"ngram {n}={[5, 4, 2][which] + 1}"
+        expected = n + 1
+    elif kind == "header":
+        j = lines.index(["\\1-grams:", "\\2-grams:", "\\3-grams:"][which])
+        lines[j] = lines[j].replace("grams", "gramz")
+        expected = j + 1
+    else:  # a word absent from the 1-grams, in a 2-gram or 3-gram line
+        if len(f[1].split()) == 1:
+            i = HIGHER_LINES[i % len(HIGHER_LINES)]
+            f = lines[i].split("\t")
+        words = f[1].split()
+        words[which % len(words)] = "funicular"
+        f[1] = " ".join(words)
+        expected = i + 1
+    if kind in ("number", "fields", "word"):
+        lines[i] = "\t".join(f)
+    path = tmp_path_factory.mktemp("bad") / "m.arpa"
+    path.write_text("\n".join(lines), encoding="utf-8")
+    try:
+        read_arpa(path)
+    except ArpaError as err:
+        assert err.problems[0].line == expected, (kind, str(err))
+        assert str(err.problems[0]).startswith(f"{path}:{expected}: ")
+    else:
+        raise AssertionError(f"{kind} corruption at line {i + 1} was not reported")

@@ -1,0 +1,74 @@
+"""Property: G of random small back-off models follows the ARPA back-off rule exactly."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from hypothesis import given
+from hypothesis import strategies as st
+
+from netbuild.builders.grammar import build_grammar
+from netbuild.inspectors.score import score_sentences
+from netbuild.io.arpa import ArpaModel, NgramTable
+
+LN10 = math.log(10.0)
+WORDS = ["<s>", "</s>", "cable", "car", "summit"]
+
+
+def rule_log10(prob: dict, bow: dict, order: int, sentence: list[str]) -> float:
+    """Plain-Python ARPA back-off rule (Katz 1987), independent of netbuild."""
+    history, total = ["<s>"], 0.0
+    for w in [*sentence, "</s>"]:
+        ctx = tuple(history[-(order - 1):]) if order > 1 else ()
+        while ctx + (w,) not in prob:
+            if not ctx:
+                return -math.inf
+            total += bow.get(ctx, 0.0)
+            ctx = ctx[1:]
+        total += prob[ctx + (w,)]
+        history.append(w)
+    return total
+
+
+@st.composite
+def models(draw):
+    order = draw(st.integers(1, 3))
+    logp = st.sampled_from([-0.1, -0.4, -0.9, -1.7, -99.0])
+    logb = st.sampled_from([0.0, -0.2, -0.5, 0.3])
+    prob = {(w,): draw(logp) for w in WORDS}
+    bow = {(w,): draw(logb) for w in WORDS if w != "</s>"}
+    for k in range(2, order + 1):
+        grams = draw(st.lists(st.tuples(*[st.sampled_from(WORDS[:1] + WORDS[2:])] * (k - 1),
+                                        st.sampled_from(WORDS[1:])),
+                              max_size=10, unique=True))
+        for g in grams:
+            if "<s>" in g[1:]:
+                continue
+            prob[g] = draw(logp)
+            if k < order:
+                bow[g] = draw(logb)
+    return order, prob, bow
+
+
+def to_model(order, prob, bow) -> ArpaModel:
+    index = {w: i for i, w in enumerate(WORDS)}
+    tables = []
+    for k in range(1, order + 1):
+        grams = sorted(g for g in prob if len(g) == k)
+        tables.append(NgramTable(
+            k, np.array([[index[w] for w in g] for g in grams], np.int32).reshape(-1, k),
+            np.array([prob[g] for g in grams]), np.array([bow.get(g, 0.0) for g in grams]),
+            np.zeros(len(grams), np.int64)))
+    return ArpaModel(list(WORDS), tables)
+
+
+@given(models(), st.lists(st.lists(st.sampled_from(WORDS[2:]), max_size=6), min_size=1,
+                          max_size=8))
+def test_lm_cost_follows_the_backoff_rule(m, sentences):
+    order, prob, bow = m
+    g = build_grammar(to_model(order, prob, bow)).fst
+    for s, score in zip(sentences, score_sentences(g, sentences)):
+        expected = -LN10 * rule_log10(prob, bow, order, s)
+        assert math.isclose(score.lm_cost, expected, rel_tol=1e-6, abs_tol=1e-4), s
+        assert score.best_path_cost <= score.lm_cost + 1e-6 * max(1.0, score.lm_cost)
