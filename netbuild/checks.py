@@ -114,8 +114,8 @@ def check_nonempty(fst: pynini.Fst, ctx: CheckContext) -> None:
     if fst.start() != pynini.NO_STATE_ID and fst.num_states() > 0:
         if fst.properties(pywrapfst.COACCESSIBLE, True) == pywrapfst.COACCESSIBLE:
             return  # every state reaches a final state, the start state included
-        if pynini.shortestdistance(fst, reverse=True)[fst.start()] != pynini.Weight.zero(
-                fst.weight_type()):
+        dist = pynini.shortestdistance(fst, reverse=True)
+        if len(dist) > fst.start() and float(dist[fst.start()]) != float("inf"):
             return
     if ctx.stage == "grammar":
         raise InputCheckFailed(

@@ -9,7 +9,9 @@ Commands (``netbuild COMMAND --help`` shows every option):
   ``{"errors": [{"file", "line", "message"}], "warnings": [...]}``.
 - ``build``: compiles the project into ``--out DIR`` (atomically); stage progress on
   stderr, then a stage table on stdout, or the manifest with ``--json``.
-- ``stats FILE``: size and properties of an FST file (or of a build directory's graph).
+- ``stats FILE``: size and properties of an FST file (or of a build directory's graph);
+  ``--json`` prints ``{"file", "fst_type"}`` (the stored type) plus the keys of
+  `netbuild.inspectors.stats.fst_stats` (``states``, ``arcs``, ...).
 - ``score --graph DIR [SENTENCE...]``: the language-model cost and the graph's best
   path cost of each sentence; ``--json`` prints a list of
   ``{"sentence", "lm_cost", "best_path_cost", "oov"}`` (infinite costs as null).
@@ -255,14 +257,20 @@ def build(project_file, out_dir, fast, as_json, **flags) -> None:
 @click.option("--json", "as_json", is_flag=True, help="Print the statistics as JSON.")
 def stats(file: Path, as_json: bool) -> None:
     """Prints the size and properties of an FST file (or a build directory's graph)."""
+    import pynini
+    import pywrapfst
+
     from .inspectors.stats import format_stats_table, fst_stats
     from .workflow import plain_json, read_fst_file
 
-    fst = read_fst_file(file)
-    result = fst_stats(fst)
+    stored = read_fst_file(file)
+    vector = stored if stored.fst_type() == "vector" else pywrapfst.convert(stored, "vector")
+    result = {"file": str(file), "fst_type": stored.fst_type(),
+              **fst_stats(pynini.Fst.from_pywrapfst(vector))}
     if as_json:
         _echo_json(plain_json(result))
     else:
+        click.echo(f"{file} ({stored.fst_type()} FST)")
         click.echo(format_stats_table(result))
 
 

@@ -28,6 +28,7 @@ import tempfile
 import time
 
 import pynini
+import pywrapfst
 
 from .errors import DeterminizeError
 from .symbols import BACKOFF
@@ -211,7 +212,7 @@ def _child(argv: list[str] | None = None) -> int:
         ofst.write(args.ofile)
     except MemoryError:
         return _EXIT_MEMORY
-    except pynini.FstError as err:
+    except pywrapfst.FstError as err:
         print(f"FST error: {err}", file=sys.stderr)
         return _EXIT_FSTERROR
     with open(args.status, "w", encoding="utf-8") as fh:

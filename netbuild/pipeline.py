@@ -22,6 +22,7 @@ from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 import pynini
+import pywrapfst
 
 from . import checks as chk
 from .errors import EmptyCompositionError, StageError
@@ -100,17 +101,20 @@ def compose_stage(lfst: pynini.Fst, gfst: pynini.Fst) -> pynini.Fst:
     composition is trimmed (connected). Symbol tables: L's input, G's output.
 
     Raises:
-        EmptyCompositionError: L∘G has no path, almost always because no word of the
+        EmptyCompositionError: L∘G has no path (or no path with a word), almost always because no word of the
             lexicon occurs in the model (different spellings or vocabularies).
     """
     lsorted = pynini.arcsort(lfst, sort_type="olabel")
     try:
         ofst = pynini.compose(lsorted, gfst, connect=True)
-    except pynini.FstError as err:
+    except pywrapfst.FstError as err:
         raise StageError("compose", f"OpenFst could not compose L and G ({err})",
                          "check that L's output and G's input use the same word "
                          "symbol table") from err
-    if ofst.start() == pynini.NO_STATE_ID or ofst.num_states() == 0:
+    # Through the back-off loop L∘G may still accept the empty sentence: no word at all
+    # on the output side is the same failure.
+    if (ofst.start() == pynini.NO_STATE_ID or ofst.num_states() == 0
+            or not fst_to_arrays(ofst).olabel.any()):
         raise EmptyCompositionError(
             "compose", "L∘G has no path: no word of the lexicon occurs in the model "
             "(or no sentence of the model can be spelt with the lexicon)",

@@ -344,8 +344,20 @@ def test_stats_json(built: Path, runner):
         result = run(runner, "stats", target, "--json")
         assert result.exit_code == 0
         data = json.loads(result.stdout)
+        assert data["file"] == str(target) and data["fst_type"] == "vector"
         assert data["states"] == manifest["stages"][-1]["states"]
         assert data["arcs"] == manifest["stages"][-1]["arcs"]
+
+
+def test_stats_const_file(runner, tmp_path: Path):
+    out = tmp_path / "c"
+    assert run(runner, "build", "--project", PROJECT, "--out", out, "--fst-type", "const",
+               "--fast").exit_code == 0
+    data = json.loads(run(runner, "stats", out / "graph.fst", "--json").stdout)
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert data["fst_type"] == "const"
+    assert (data["states"], data["arcs"]) == (manifest["stages"][-1]["states"],
+                                              manifest["stages"][-1]["arcs"])
 
 
 def test_stats_text(built: Path, runner):

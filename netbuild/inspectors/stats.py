@@ -7,6 +7,9 @@
 
 from __future__ import annotations
 
+import functools
+import operator
+
 import numpy as np
 import pynini
 import pywrapfst
@@ -38,9 +41,7 @@ def fst_stats(fst: pynini.Fst) -> dict:
     arcs = fst_to_arrays(fst)
     ieps = arcs.ilabel == 0
     oeps = arcs.olabel == 0
-    mask = 0
-    for bit in PROPERTY_NAMES.values():
-        mask |= bit
+    mask = functools.reduce(operator.or_, PROPERTY_NAMES.values())
     props = fst.properties(mask, True)
     return {
         "states": arcs.num_states,
@@ -49,7 +50,7 @@ def fst_stats(fst: pynini.Fst) -> dict:
         "output_epsilon_arcs": int(oeps.sum()),
         "epsilon_arcs": int((ieps & oeps).sum()),
         "final_states": int(np.isfinite(arcs.final_weights).sum()),
-        "properties": sorted(n for n, bit in PROPERTY_NAMES.items() if props & bit),
+        "properties": sorted(n for n, bit in PROPERTY_NAMES.items() if (props & bit) == bit),
         "bytes": {"vector": len(fst.write_to_string()),
                   "const": len(pywrapfst.convert(fst, "const").write_to_string())},
         "arc_type": fst.arc_type(),

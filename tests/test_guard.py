@@ -1,0 +1,109 @@
+"""Tests of the process-level determinization guard (netbuild/guard.py)."""
+
+from __future__ import annotations
+
+import pynini
+import pytest
+import random
+
+from wordgraph_helpers import demo_case, lexicon_for, normalized_bigram
+
+from netbuild.errors import DeterminizeError
+from netbuild.guard import determinize_guarded, precheck_determinizable
+from netbuild.pipeline import compose_stage
+
+_MB = 1024 * 1024
+
+
+def _chain_fst(arcs, finals, n):
+    f = pynini.Fst()
+    f.add_states(n)
+    f.set_start(0)
+    for s, i, o, w, d in arcs:
+        f.add_arc(s, pynini.Arc(i, o, w, d))
+    for s in finals:
+        f.set_final(s)
+    return f
+
+
+def _not_twins() -> pynini.Fst:
+    """a^n b -> x^n and a^n c -> y^n: functional, but its output must wait for the last
+    letter, so determinization never ends (the twins property fails)."""
+    # reference: Mohri (1997), "Finite-state transducers in language and speech
+    # processing", Computational Linguistics 23(2), section 3 (twins property)
+    return _chain_fst([(0, 1, 1, 0, 1), (1, 1, 1, 0, 1), (1, 2, 0, 0, 3),
+                       (0, 1, 2, 0, 2), (2, 1, 2, 0, 2), (2, 3, 0, 0, 3)], [3], 4)
+
+
+def _non_functional_loop() -> pynini.Fst:
+    """(a b)* with a:x or a:y under the loop: two outputs for one input."""
+    return _chain_fst([(0, 1, 1, 0, 1), (0, 1, 2, 0, 2), (1, 2, 0, 0, 0),
+                       (2, 2, 0, 0, 0)], [0], 3)
+
+
+@pytest.mark.slow
+def test_non_determinizable_transducer_stops_at_a_limit():
+    with pytest.raises(DeterminizeError, match=r"determinize: (ran out of its memory "
+                       r"limit of 300 MB|hit the time limit of 20 s)") as err:
+        determinize_guarded(_not_twins(), 300 * _MB, 20.0)
+    assert err.value.hint  # names what to change
+    assert "determinize_max_memory" in str(err.value) or "determinize_timeout" in str(
+        err.value)
+
+
+def test_timeout_is_reported_with_elapsed_time():
+    with pytest.raises(DeterminizeError, match=r"time limit of 0.5 s \(stopped after "
+                       r"[0-9.]+ s\)"):
+        determinize_guarded(_not_twins(), 4096 * _MB, 0.5)
+
+
+def test_non_functional_input_is_reported():
+    with pytest.raises(DeterminizeError, match="non-functional"):
+        determinize_guarded(_non_functional_loop(), 300 * _MB, 20.0)
+
+
+def test_normal_input_matches_in_process_determinize():
+    lex, grammar = demo_case()
+    lg = compose_stage(lex.fst, grammar.fst)
+    result = determinize_guarded(lg, 300 * _MB, 20.0, lfst=lex.fst, gfst=grammar.fst)
+    expected = pynini.determinize(lg)
+    # reference: OpenFst equivalence test (fst/equivalent.h) on encoded acceptors
+    mapper = pynini.EncodeMapper("standard", True, True)
+    assert pynini.equivalent(pynini.encode(expected, mapper),
+                             pynini.encode(result.fst, mapper))
+    assert result.fst.num_states() == expected.num_states()
+    assert result.peak_rss_bytes > 1 * _MB
+    assert result.fst.input_symbols() is not None
+    assert lg.num_states() == compose_stage(lex.fst, grammar.fst).num_states()  # unchanged
+
+
+def test_precheck_names_unmarked_homophones_at_once():
+    words = ["two", "too", "stop"]
+    lex = lexicon_for([("two", "t u"), ("too", "t u"), ("stop", "s t o p")], words,
+                      disambiguate=False)
+    grammar = normalized_bigram(words, random.Random(0))
+    lg = pynini.compose(lex.fst, grammar.fst)
+    with pytest.raises(DeterminizeError, match=r"not functional.*t u = too, two"):
+        precheck_determinizable(lg, lex.fst, grammar.fst)
+
+
+def test_precheck_rejects_input_epsilon_cycles():
+    cyclic = _chain_fst([(0, 0, 1, 0.5, 1), (1, 0, 2, 0.5, 0)], [1], 2)
+    with pytest.raises(DeterminizeError, match="cycle of arcs with no input label"):
+        determinize_guarded(cyclic, 300 * _MB, 20.0)
+
+
+def test_child_failure_names_likely_lexicon_cause(monkeypatch):
+    # Homophones without markers, with the pre-check switched off: the failure in the
+    # child is then diagnosed with the cheap lexicon analysis.
+    from netbuild import guard
+
+    words = ["two", "too", "stop"]
+    lex = lexicon_for([("two", "t u"), ("too", "t u"), ("stop", "s t o p")], words,
+                      disambiguate=False)
+    grammar = normalized_bigram(words, random.Random(0))
+    lg = pynini.compose(lex.fst, grammar.fst)
+    monkeypatch.setattr(guard, "precheck_determinizable", lambda *args: None)
+    with pytest.raises(DeterminizeError, match=r"homophones without disambiguation "
+                       r"markers \(t u = too, two"):
+        determinize_guarded(lg, 300 * _MB, 20.0, lfst=lex.fst, gfst=grammar.fst)
