@@ -21,7 +21,11 @@ it resets the high-water mark (writing 5 to /proc/self/clear_refs) so the report
 is the peak *during* the measurement -- it still includes the interpreter and the
 imported libraries that stay resident, which is reported separately as ``rss_before``.
 `bytes_per_ngram` uses the peak minus ``rss_before`` (what the measurement itself adds);
-``total_bytes_per_ngram`` uses the whole peak. The parent also records the child's
+``total_bytes_per_ngram`` uses the whole peak.
+
+On a shared machine wall-clock times include waiting for a core; the parent therefore
+also records the child's CPU time (user + system, whole child lifetime, imports
+included) from ``os.wait4``. The parent also records the child's
 ``ru_maxrss`` from ``os.wait4`` (whole child lifetime, includes imports and any
 grandchild the child waited for, e.g. the determinization guard).
 
@@ -161,7 +165,12 @@ def _child_wordgraph(params: dict) -> dict:
     t = step("build L", t, lex.fst)
     t_pipe = t
     records = []
-    graph = build_word_graph(lex, grammar, opts, progress=records.append)
+
+    def progress(record) -> None:
+        records.append(record)
+        print(f"  {record}", file=sys.stderr, flush=True)
+
+    graph = build_word_graph(lex, grammar, opts, progress=progress)
     t_end = time.perf_counter()
     return {**mem, "checks": params["checks"], "prep_steps": steps,
             "stages": [dataclasses.asdict(r) for r in records],
@@ -219,6 +228,7 @@ def measure(kind: str, params: dict) -> dict:
     finally:
         os.unlink(result_path)
     record.update(kind=kind, params=params, child_maxrss=usage.ru_maxrss * 1024,
+                  child_cpu_seconds=usage.ru_utime + usage.ru_stime,
                   load_before=load_before, load_after=load_after)
     return record
 
@@ -292,6 +302,8 @@ def summarize(results: dict) -> dict:
             "ngrams_per_second_best": n / min(secs),
             "peak_rss_median": _median([r["peak_rss"] for r in runs]),
             "rss_before_median": _median([r["rss_before"] for r in runs]),
+            "child_cpu_seconds_median": _median([r.get("child_cpu_seconds", float("nan"))
+                                                 for r in runs]),
             "bytes_per_ngram": _median(added) / n,
             "total_bytes_per_ngram": _median([r["peak_rss"] for r in runs]) / n,
             "g_states": runs[0]["g_states"], "g_arcs": runs[0]["g_arcs"]}
@@ -322,14 +334,15 @@ def markdown(summary: dict) -> str:
                    f"{_mb(summary['baseline_peak_rss'])}.\n")
     if "arpa_g" in summary:
         out += ["| model | n-grams | runs | read s | build G s | total s | n-grams/s "
-                "(median / best) | peak RSS | added bytes/n-gram | total bytes/n-gram "
-                "| G states | G arcs |",
-                "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
+                "(median / best) | child CPU s | peak RSS | added bytes/n-gram "
+                "| total bytes/n-gram | G states | G arcs |",
+                "|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|"]
         for name, s in summary["arpa_g"].items():
             out.append(
                 f"| {name} | {s['ngrams']:,} | {s['runs']} | {s['read_seconds_median']:.2f} "
                 f"| {s['build_seconds_median']:.2f} | {s['seconds_median']:.2f} "
                 f"| {s['ngrams_per_second_median']:,.0f} / {s['ngrams_per_second_best']:,.0f} "
+                f"| {s.get('child_cpu_seconds_median', float('nan')):.2f} "
                 f"| {_mb(s['peak_rss_median'])} | {s['bytes_per_ngram']:.0f} "
                 f"| {s['total_bytes_per_ngram']:.0f} | {s['g_states']:,} | {s['g_arcs']:,} |")
         out.append("")
@@ -359,6 +372,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--regenerate", action="store_true", help="regenerate the inputs")
     ap.add_argument("--results", default=str(OUT / "results.json"))
+    ap.add_argument("--update", action="store_true",
+                    help="keep the sections of an existing results file not measured now")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     ap.add_argument("--params", help=argparse.SUPPRESS)
     ap.add_argument("--result", help=argparse.SUPPRESS)
@@ -370,7 +385,13 @@ def main(argv: list[str] | None = None) -> int:
         return 0
 
     OUT.mkdir(parents=True, exist_ok=True)
-    results: dict = {"machine": machine()}
+    results: dict = {}
+    if args.update and Path(args.results).exists():
+        results = json.loads(Path(args.results).read_text())
+        results.setdefault("machines", []).append(results.get("machine"))
+        for kind in args.only:
+            results.pop(kind, None)
+    results["machine"] = machine()
     if "baseline" in args.only:
         results["baseline"] = [measure("baseline", {}) for _ in range(args.repeat)]
     if "arpa_g" in args.only:
@@ -383,6 +404,7 @@ def main(argv: list[str] | None = None) -> int:
                       f"peak {_mb(r['peak_rss'])}", file=sys.stderr)
                 runs.append(r)
             results.setdefault("arpa_g", {})[name] = runs
+            _save(results, args.results)
     if "wordgraph" in args.only or "workflow" in args.only:
         data = ensure_data("w20k_n1m", args.regenerate)
     if "wordgraph" in args.only:
@@ -395,17 +417,27 @@ def main(argv: list[str] | None = None) -> int:
                       f"peak {_mb(r['peak_rss'])}", file=sys.stderr)
                 runs.append(r)
             results.setdefault("wordgraph", {})[label] = runs
+            _save(results, args.results)
     if "workflow" in args.only:
         project = write_project(data)
         runs = [measure("workflow", {"project": str(project)}) for _ in range(args.repeat)]
         results["workflow"] = {"w20k_n1m": runs}
 
-    results["summary"] = summarize(results)
-    table = markdown(results["summary"])
-    Path(args.results).write_text(json.dumps(results, indent=2) + "\n")
-    Path(args.results).with_suffix(".md").write_text(table)
+    table = _save(results, args.results)
     print(table)
     return 0
+
+
+def _save(results: dict, path: str) -> str:
+    """Writes the raw runs and summary (JSON) and the tables (Markdown); returns the tables.
+
+    Called after every finished group, so a long run interrupted keeps what it measured.
+    """
+    results["summary"] = summarize(results)
+    table = markdown(results["summary"])
+    Path(path).write_text(json.dumps(results, indent=2) + "\n")
+    Path(path).with_suffix(".md").write_text(table)
+    return table
 
 
 if __name__ == "__main__":

@@ -270,7 +270,6 @@ def stats(file: Path, as_json: bool) -> None:
     if as_json:
         _echo_json(plain_json(result))
     else:
-        click.echo(f"{file} ({stored.fst_type()} FST)")
         click.echo(format_stats_table(result))
 
 

@@ -147,8 +147,14 @@ def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
                 stage, f"hit the time limit of {timeout:g} s (stopped after "
                 f"{elapsed:.1f} s); the input is probably not determinizable: "
                 f"{_likely_causes(lfst, gfst)}",
-                "fix the lexicon or model, or raise determinize_timeout if the graph is "
+                "fix the lexicon or model, or raise --determinize-timeout (determinize_timeout in [build]) if the graph is "
                 "just large") from None
+        except BaseException:
+            # Ctrl-C or SIGTERM in the parent: the child runs in its own session and
+            # would otherwise go on, orphaned and without its time limit.
+            proc.kill()
+            proc.wait()
+            raise
         elapsed = time.monotonic() - started
         stderr = err_bytes.decode(errors="replace")
         status = {}
@@ -165,7 +171,7 @@ def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
             stage, f"ran out of its memory limit of {_limit_text(max_memory)} after "
             f"{elapsed:.1f} s; the input is probably not determinizable: "
             f"{_likely_causes(lfst, gfst)}",
-            "fix the lexicon or model, or raise determinize_max_memory if the graph is "
+            "fix the lexicon or model, or raise --determinize-max-memory (determinize_max_memory in [build]) if the graph is "
             "just large")
     if code == _EXIT_FSTERROR:
         detail = stderr.strip().splitlines()[0] if stderr.strip() else "FST error"
@@ -179,7 +185,7 @@ def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
         stage, f"the determinization process crashed ({how}) after {elapsed:.1f} s"
         + (f": {tail}" if tail else "") + f"; {_likely_causes(lfst, gfst)}",
         f"if the memory limit ({_limit_text(max_memory)}) is low, raise "
-        "determinize_max_memory; otherwise fix the lexicon or model")
+        "--determinize-max-memory; otherwise fix the lexicon or model")
 
 
 def _peak_rss() -> int:

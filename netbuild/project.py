@@ -57,7 +57,7 @@ from pathlib import Path
 from typing import Any
 
 from .errors import Diagnostics, ProjectError
-from .options import BuildOptions, GrammarOptions, LexiconOptions
+from .options import BuildOptions
 
 _SIZE_RE = re.compile(r"^\s*([0-9]+(?:\.[0-9]*)?|\.[0-9]+)\s*([A-Za-z]*)\s*$")
 _SIZE_UNITS = {
@@ -178,7 +178,8 @@ class _Locator:
             (n for (s, _), n in self.keys.items() if s == name), default=None)
 
     def key(self, section: str, key: str) -> int | None:
-        return self.keys.get((section, key)) or self.section(section)
+        return (self.keys.get((section, key)) or self.section(section)
+                or self.keys.get(("", section)))  # inline table: `build = {...}`
 
 
 def _check_value(kind: str, choices: tuple[str, ...], value: Any) -> tuple[Any, str | None]:
@@ -201,7 +202,8 @@ def _check_value(kind: str, choices: tuple[str, ...], value: Any) -> tuple[Any, 
         if isinstance(value, (int, float)) and not isinstance(value, bool) \
                 and 0.0 <= value < 1.0:
             return float(value), None
-        return None, f"must be a number with 0 <= p < 1, not {value!r}; write e.g. 0.5 (0 disables)"
+        return None, (f"must be a number with 0 <= p < 1, not {value!r}; "
+                      "write e.g. 0.5 (0 disables)")
     if kind == "size":
         try:
             return parse_size(value), None
@@ -291,7 +293,8 @@ def read_project(path: str | Path, diagnostics: Diagnostics | None = None) -> Pr
                 converted = _resolve(base, converted)
                 if not converted.is_file():
                     state = "is not a file" if converted.exists() else "does not exist"
-                    diag.error(where, line, f"[{section}] {key} = \"{value}\": {converted} {state}",
+                    diag.error(where, line,
+                               f"[{section}] {key} = \"{value}\": {converted} {state}",
                                "fix the path (relative paths start at the project file's "
                                "directory)")
                     continue

@@ -7,6 +7,7 @@
 - `load_build(directory)`: reads an output directory back as a `LoadedBuild`.
 - `read_fst_file(path)`: one FST file (stored type kept), or a build directory's graph.
 - `atomic_directory(out_dir)`: the context manager behind the atomic write.
+- `check_out_dir(out_dir)`: refuses an output path that is not a build or empty directory.
 - `plain_json(value)`: dataclasses, numpy scalars and infinities as plain JSON data.
 
 Output directory (every name relative to it)::
@@ -248,6 +249,19 @@ def _publish_modes(directory: Path) -> None:
             os.chmod(entry, 0o666 & ~umask)
 
 
+def check_out_dir(out_dir: str | os.PathLike) -> Path:
+    """Returns `out_dir` as an absolute path if a build may replace it.
+
+    Raises:
+      ProjectError: it exists and is neither an empty directory nor a netbuild build.
+    """
+    out = Path(out_dir).absolute()
+    if out.exists() and not (out.is_dir() and (_is_build(out) or not any(out.iterdir()))):
+        raise ProjectError(f"output {out} exists and is not a netbuild build directory",
+                           "choose another --out, or remove it first", path=str(out))
+    return out
+
+
 @contextlib.contextmanager
 def atomic_directory(out_dir: str | os.PathLike) -> Iterator[Path]:
     """Yields a fresh temporary directory that replaces `out_dir` when the block ends.
@@ -262,10 +276,7 @@ def atomic_directory(out_dir: str | os.PathLike) -> Iterator[Path]:
       ProjectError: `out_dir` exists and is neither an empty directory nor a
         netbuild build (so it is never replaced by mistake), or cannot be written.
     """
-    out = Path(out_dir).absolute()
-    if out.exists() and not (out.is_dir() and (_is_build(out) or not any(out.iterdir()))):
-        raise ProjectError(f"output {out} exists and is not a netbuild build directory",
-                           "choose another --out, or remove it first", path=str(out))
+    out = check_out_dir(out_dir)
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
         tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.tmp-", dir=out.parent))
@@ -275,17 +286,20 @@ def atomic_directory(out_dir: str | os.PathLike) -> Iterator[Path]:
     try:
         yield tmp
         _publish_modes(tmp)
-        old = None
-        if out.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
-            os.rename(out, old / "previous")  # rename aside, then in: never no directory
-        try:
+        if not out.exists():
             os.rename(tmp, out)
-        except BaseException:
-            if old is not None:
+            return
+        # The old directory is deleted only once the new one is in place; between the
+        # two renames `out` is briefly absent, and put back if the second one fails.
+        old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
+        try:
+            os.rename(out, old / "previous")
+            try:
+                os.rename(tmp, out)
+            except BaseException:
                 os.rename(old / "previous", out)
-            raise
-        if old is not None:
+                raise
+        finally:
             shutil.rmtree(old, ignore_errors=True)
     finally:
         if tmp.exists():
@@ -374,6 +388,7 @@ def build(project: Project, out_dir: str | os.PathLike,
       CheckFailed: a stage check failed (a netbuild bug).
       KeyboardInterrupt: interrupted (or SIGTERM); the previous `out_dir` is untouched.
     """
+    check_out_dir(out_dir)  # fail before the work, not after it
     with _sigterm_raises():
         diag = Diagnostics()
         inputs = read_inputs(project, diag)
@@ -573,6 +588,6 @@ def load_build(directory: str | os.PathLike) -> LoadedBuild:
     return LoadedBuild(d, manifest, graph, grammar, lexicon, words, phones)
 
 
-__all__ = ["BuildResult", "Inputs", "LoadedBuild", "atomic_directory", "build",
+__all__ = ["BuildResult", "Inputs", "LoadedBuild", "atomic_directory", "build", "check_out_dir",
            "check_inputs", "load_build", "missing_pronunciations", "plain_json",
            "read_fst_file", "read_inputs"]

@@ -287,6 +287,7 @@ def test_build_refuses_foreign_directory(runner, tmp_path: Path):
     result = run(runner, "build", "--project", PROJECT, "--out", out)
     assert result.exit_code == 1
     assert "is not a netbuild build directory; choose another --out" in result.stderr
+    assert "states" not in result.stderr  # refused before any stage ran
     assert (out / "notes.txt").read_text() == "mine"
 
 

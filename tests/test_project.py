@@ -249,3 +249,9 @@ def test_require_inputs():
     text = str(info.value)
     assert "no lexicon given" in text and "--lexicon" in text
     assert "no lm given" in text and "--lm" in text
+
+
+def test_inline_table_problem_is_located(inputs: Path):
+    p = write(inputs / "p.toml", '# inputs\n\nbuild = {fst_type = "sparse"}\n')
+    with pytest.raises(ProjectError, match=r"p\.toml:3: \[build\] fst_type 'sparse'"):
+        read_project(p)

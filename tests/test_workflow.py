@@ -398,3 +398,23 @@ def test_plain_json():
     assert workflow.plain_json(value) == {"a": 3, "b": [1.5, None], "c": {"1": 0.5},
                                           "d": "/x", "e": None}
     json.dumps(workflow.plain_json(value), allow_nan=False)
+
+
+def test_atomic_directory_puts_old_back_when_rename_fails(tmp_path: Path, monkeypatch):
+    out = tmp_path / "b"
+    with atomic_directory(out) as tmp:
+        (tmp / "manifest.json").write_text('{"format": "netbuild-build"}')
+    before = snapshot(out)
+    real = os.rename
+
+    def rename(src, dst):
+        if Path(src).name.startswith(".b.tmp-"):
+            raise OSError(28, "No space left on device")
+        real(src, dst)
+
+    monkeypatch.setattr(workflow.os, "rename", rename)
+    with pytest.raises(OSError):
+        with atomic_directory(out) as tmp:
+            (tmp / "manifest.json").write_text('{"format": "netbuild-build", "new": 1}')
+    assert snapshot(out) == before
+    assert os.listdir(tmp_path) == ["b"]

@@ -37,20 +37,18 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import math
-import struct
+
 import numpy as np
 import pynini
 
 from ..errors import LexiconError, Problem, ProjectError, SymbolError
+from ..io.fstfile import arrays_to_fst
 from ..io.lexicon import Lexicon
 from ..io.phones import PhoneInventory, suggestion
 from ..options import LexiconOptions
 from ..symbols import BACKOFF, disambiguation_marker, make_symbol_table
 from .disambiguation import MarkerUse, assign_markers, homophone_groups
 
-_FST_MAGIC = 2125659606  # OpenFst binary header magic number (fst/fst.h)
-_VECTOR_VERSION = 2  # VectorFst file version
-_PROPS_EXPANDED_MUTABLE = 0x3  # kExpanded | kMutable; other properties computed on demand
 
 
 @dataclasses.dataclass
@@ -231,7 +229,7 @@ def _build(lexicon: Lexicon, inventory: PhoneInventory | None,
 
     src, ilab, olab, wt, dst, finals, start = _arcs(
         flat, lengths, words, costs, closure, silence and phone_index[silence], s, backoff_id, backoff_word)
-    fst = _arrays_to_fst(src, ilab, olab, wt, dst, finals, start)
+    fst = arrays_to_fst(len(finals), start, finals, src, ilab, olab, wt, dst)
     fst.set_input_symbols(phone_symbols)
     fst.set_output_symbols(word_symbols)
     fst.arcsort("olabel")
@@ -294,40 +292,4 @@ def _arcs(flat: np.ndarray, lengths: np.ndarray, words: np.ndarray, costs: np.nd
         wt = np.concatenate([wt, np.array(e_wt, dtype=np.float64)])
         dst = np.concatenate([dst, np.array(e_dst, dtype=np.int32)])
     return src, ilab, olab, wt, dst, finals, start
-
-
-def _arrays_to_fst(src: np.ndarray, ilabel: np.ndarray, olabel: np.ndarray,
-                   weight: np.ndarray, dst: np.ndarray, finals: np.ndarray,
-                   start: int) -> pynini.Fst:
-    """Returns a tropical vector FST with the given arcs, read from its binary layout.
-
-    Arcs may come in any order; they are grouped by source state (stable). `finals`
-    holds one weight per state (inf = not final).
-    """
-    n_states = len(finals)
-    n_arcs = len(src)
-    order = np.argsort(src, kind="stable")
-    s_src = src[order].astype(np.int64)
-    per_state = np.bincount(s_src, minlength=n_states).astype(np.int64)
-    before = np.cumsum(per_state) - per_state
-    # Each state: final weight (f32), arc count (i64); each arc: 4 x 4 bytes.
-    buf = np.zeros(3 * n_states + 4 * n_arcs, dtype="<i4")
-    fbuf = buf.view("<f4")
-    so = 3 * np.arange(n_states, dtype=np.int64) + 4 * before
-    fbuf[so] = finals.astype(np.float32)
-    buf[so + 1] = (per_state & 0xFFFFFFFF).astype(np.int64).astype("<i4")
-    buf[so + 2] = (per_state >> 32).astype("<i4")
-    ao = 3 * s_src + 3 + 4 * np.arange(n_arcs, dtype=np.int64)
-    buf[ao] = ilabel[order]
-    buf[ao + 1] = olabel[order]
-    fbuf[ao + 2] = weight[order].astype(np.float32)
-    buf[ao + 3] = dst[order]
-
-    def text(s: str) -> bytes:
-        return struct.pack("<i", len(s)) + s.encode()
-
-    header = (struct.pack("<i", _FST_MAGIC) + text("vector") + text("standard")
-              + struct.pack("<iiQqqq", _VECTOR_VERSION, 0, _PROPS_EXPANDED_MUTABLE,
-                            start, n_states, 0))
-    return pynini.Fst.read_from_string(header + buf.tobytes())
 
