@@ -29,20 +29,33 @@ lex = read_lexicon(data / "lexicon.txt", inv, opts.lexicon)
 g = build_grammar(read_arpa(data / "model.arpa"))
 L = build_lexicon(lex, inv, g.word_symbols, opts.lexicon)
 out = {}
-t = time.perf_counter(); c = pl.compose_stage(L.fst, g.fst); out["compose"] = time.perf_counter() - t
-t = time.perf_counter(); d = pl.determinize_stage(c, opts); out["determinize"] = time.perf_counter() - t
-t = time.perf_counter(); m = pl.minimize_stage(d); out["minimize"] = time.perf_counter() - t
+t = time.perf_counter()
+c = pl.compose_stage(L.fst, g.fst)
+out["compose"] = time.perf_counter() - t
+t = time.perf_counter()
+d = pl.determinize_stage(c, opts)
+out["determinize"] = time.perf_counter() - t
+t = time.perf_counter()
+m = pl.minimize_stage(d)
+out["minimize"] = time.perf_counter() - t
 out["states"], out["arcs"] = m.num_states(), pl.num_arcs(m)
-t = time.perf_counter(); r = pl.log_potentials(m, max_iterations=20); out["log_potentials_20_iter"] = time.perf_counter() - t
+t = time.perf_counter()
+r = pl.log_potentials(m, max_iterations=20)
+out["log_potentials_20_iter"] = time.perf_counter() - t
 out["log_potentials_20_converged"] = r is not None
 print(json.dumps(out), flush=True)
 arcs = pl.fst_to_arrays(m)
-prob = np.exp(-arcs.weight.astype(np.float64)); final = np.exp(-arcs.final_weights.astype(np.float64))
-dd = final.copy(); growth = []
+prob = np.exp(-arcs.weight.astype(np.float64))
+final = np.exp(-arcs.final_weights.astype(np.float64))
+dd = final.copy()
+growth = []
 for i in range(200):
     nxt = final + np.bincount(arcs.src, weights=prob * dd[arcs.dst], minlength=arcs.num_states)
-    if i % 50 == 49: growth.append([i + 1, float(nxt[m.start()]), float(np.abs(nxt - dd).max())])
+    if i % 50 == 49:
+        growth.append([i + 1, float(nxt[m.start()]), float(np.abs(nxt - dd).max())])
     dd = nxt
 out["value_iteration_start_distance_and_max_change"] = growth
-t = time.perf_counter(); pynini.push(m, push_weights=True, reweight_type="to_initial"); out["tropical_push"] = time.perf_counter() - t
+t = time.perf_counter()
+pynini.push(m, push_weights=True, reweight_type="to_initial")
+out["tropical_push"] = time.perf_counter() - t
 print(json.dumps(out, indent=1))

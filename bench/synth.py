@@ -19,9 +19,9 @@ Most k-grams (k >= 3) predict a word that continues their history's suffix (so t
 suffix (k-1)-gram exists, as in a model estimated from counts); a share
 `suffix_miss_share` does not. A share `hole_share` of the k-grams gets a history that
 is *not* a (k-1)-gram (a "hole"; its back-off weight is 1 by the format's rule); hole
-histories are taken among the missed suffixes, so each is still reached by a k-gram. Probabilities come from
-made-up counts with Witten-Bell-style reserved mass T/(C+T) per history; each history's
-back-off weight is then set by the Katz rule
+histories are taken among the missed suffixes, so each is still reached by a k-gram.
+Probabilities come from made-up counts with Witten-Bell-style reserved mass T/(C+T)
+per history; each history's back-off weight is then set by the Katz rule
 
     alpha(h) = (1 - sum_{w in E(h)} P(w|h)) / (1 - sum_{w in E(h)} P_lower(w|h'))
 

@@ -8,6 +8,8 @@
 - `unmarked_homophones(lfst, ...)`, `unmarked_prefixes(...)`, `lexicon_pronunciations(lfst)`:
   cheap analyses of the lexicon transducer used by the checks and the determinization guard.
 - `has_input_epsilon_cycle(fst)`: True when input-epsilon arcs form a cycle.
+- `check_no_auxiliary_markers`, `check_emission_inputs`, `check_word_outputs`,
+  `stochasticity_deviation(fst)`: checks and a measure for the full graph H∘C∘L∘G.
 
 A failed check stops the build. When the cause is in the inputs it raises an
 `InputCheckFailed` (or `EmptyCompositionError`) whose message names the likely input and
@@ -378,3 +380,64 @@ def check_words_reachable(fst: pynini.Fst, ctx: CheckContext) -> None:
         f"{_word_list(names)}",
         "add pronunciations for them to the lexicon, or let the grammar builder drop "
         "model words the lexicon lacks")
+
+
+# ------------------------------------------------------------- checks of the full graph
+
+
+def stochasticity_deviation(fst: pynini.Fst) -> float:
+    """Returns max over states of |ln(sum of outgoing arc probabilities + final)|.
+
+    Probabilities are exp(-weight) (log semiring); 0 means every state's outgoing mass
+    is exactly 1. Computed in bulk over `fst_to_arrays`; inf when a state has no mass.
+    """
+    if fst.num_states() == 0:
+        return 0.0
+    arcs = fst_to_arrays(fst)
+    mass = np.exp(-arcs.final_weights.astype(np.float64))
+    mass += np.bincount(arcs.src, weights=np.exp(-arcs.weight.astype(np.float64)),
+                        minlength=arcs.num_states)
+    with np.errstate(divide="ignore"):
+        return float(np.max(np.abs(np.log(mass))))
+
+
+def _auxiliary_ids(table: pynini.SymbolTable | None) -> list[int]:
+    return [] if table is None else [k for k, s in table if is_auxiliary(s)]
+
+
+def check_no_auxiliary_markers(fst: pynini.Fst, ctx: CheckContext) -> None:
+    """Raises when an auxiliary marker of the context's tables is left on either side."""
+    arcs = fst_to_arrays(fst)
+    for side, labels, table in (("input", arcs.ilabel, ctx.isymbols),
+                                ("output", arcs.olabel, ctx.osymbols)):
+        left = np.isin(labels, _auxiliary_ids(table))
+        if left.any():
+            names = sorted({table.find(int(k)) for k in labels[left][:20]})
+            raise _internal(fst, ctx, f"auxiliary markers {names} are left on the {side} "
+                            "side", arcs.src[left][:3].tolist())
+
+
+def check_emission_inputs(fst: pynini.Fst, ctx: CheckContext) -> None:
+    """Raises unless every input label is epsilon or an emission class ``e<c>``."""
+    arcs = fst_to_arrays(fst)
+    table = ctx.isymbols
+    uniq = np.unique(arcs.ilabel).tolist()
+    bad = [k for k in uniq if k != 0 and (table is None or not table.member(k)
+                                         or not table.find(k).startswith("e")
+                                         or not table.find(k)[1:].isdigit()
+                                         or int(table.find(k)[1:]) + 1 != k)]
+    if bad:
+        raise _internal(fst, ctx, f"input labels {bad[:6]} are not emission classes",
+                        arcs.src[np.isin(arcs.ilabel, bad)][:3].tolist())
+
+
+def check_word_outputs(fst: pynini.Fst, ctx: CheckContext) -> None:
+    """Raises unless every output label is epsilon or a word of the word table."""
+    arcs = fst_to_arrays(fst)
+    table = ctx.osymbols
+    uniq = np.unique(arcs.olabel).tolist()
+    bad = [k for k in uniq if k != 0 and (table is None or not table.member(k)
+                                         or is_auxiliary(table.find(k)))]
+    if bad:
+        raise _internal(fst, ctx, f"output labels {bad[:6]} are not words",
+                        arcs.src[np.isin(arcs.olabel, bad)][:3].tolist())

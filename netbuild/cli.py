@@ -18,6 +18,17 @@ Commands (``netbuild COMMAND --help`` shows every option):
 - ``estimate --text F -o OUT.arpa``: estimates a back-off model from sentences
   (gzip-compressed when OUT ends in .gz); ``--json`` prints
   ``{"output", "order", "counts", "sentences", "vocabulary_size"}``.
+- ``ambiguity (--graph DIR | --project F)``: homophone and prefix groups, auxiliary
+  markers and why, and per stage FST the input non-determinism, epsilon ratio and
+  out-degrees; ``--json`` keys are listed in docs/diagnostics.md.
+- ``draw [--graph DIR] (--word W | --state N | --sentence "...") -o FILE``: a small
+  drawing (DOT, SVG, PNG, PDF by the ending); refused above ``--max-states``.
+- ``trace WORD (--graph DIR | --project F)``: follows one word through the lexicon,
+  the language model, the context map and every graph stage; prints the verdict (a
+  cause code), the reason and the fix. ``--json`` keys are listed in docs/diagnostics.md.
+- ``replay --graph DIR [--nbest N] [--expect "WORDS"] PHONE...``: the n best word
+  sequences the word-level graph gives a phone sequence, with language-model,
+  pronunciation and silence costs; ``--json`` keys are listed in docs/diagnostics.md.
 
 Errors are handled in one place (`_Group.main`): netbuild's own errors print a
 message without a traceback (an `InputError` one located problem per line) and exit 1,
@@ -112,6 +123,8 @@ def _input_options(f):
         click.option("--lexicon", type=_EXISTING, help="The pronunciation lexicon."),
         click.option("--lm", type=_EXISTING, help="The ARPA language model."),
         click.option("--phones", type=_EXISTING, help="The phone inventory."),
+        click.option("--context", type=_EXISTING,
+                     help="The context map; when given, the full graph is built."),
     ]):
         f = option(f)
     return f
@@ -147,6 +160,10 @@ def _build_options(f):
                      help="Memory limit of determinization, e.g. 8GiB or 300MiB."),
         click.option("--determinize-timeout", type=click.FloatRange(0.0, min_open=True),
                      metavar="SECONDS", help="Time limit of determinization."),
+        click.option("--final-optimize/--no-final-optimize", default=None,
+                     help="Full graph: determinize and minimize H∘C∘L∘G."),
+        click.option("--transition-scale", type=click.FloatRange(0.0), metavar="X",
+                     help="Full graph: scale of the HMM self-loop and exit costs."),
     ]):
         f = option(f)
     return f
@@ -212,7 +229,7 @@ def check(project_file, as_json, **flags) -> None:
 # --- build ------------------------------------------------------------------------
 
 def _stage_row(name: str, states: Any, arcs: Any, seconds: Any, peak: Any) -> str:
-    return f"{name:<12} {states:>10} {arcs:>11} {seconds:>9} {peak:>11}"
+    return f"{name:<16} {states:>10} {arcs:>11} {seconds:>9} {peak:>11}"
 
 
 @cli.command()
@@ -355,6 +372,141 @@ def estimate(text_file: Path, order: int, output: Path, unk: bool, as_json: bool
     else:
         grams = ", ".join(f"{c} {k + 1}-grams" for k, c in enumerate(counts))
         click.echo(f"wrote {output}: {grams} from {len(sentences)} sentences")
+
+
+# --- ambiguity --------------------------------------------------------------------
+
+@cli.command()
+@click.option("--graph", "graph_dir", type=click.Path(file_okay=False, path_type=Path),
+              help="A build directory written by 'netbuild build'.")
+@click.option("--project", "project_file", type=_EXISTING,
+              help="A project file: inspect its lexicon and G, L and L∘G (no determinization).")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+def ambiguity(graph_dir: Path | None, project_file: Path | None, as_json: bool) -> None:
+    """Lists homophones, prefix pronunciations, markers and non-deterministic states."""
+    from .inspectors.ambiguity import (format_report, graph_ambiguity, project_ambiguity,
+                                       report_to_json)
+    from .workflow import plain_json
+
+    if (graph_dir is None) == (project_file is None):
+        raise click.UsageError("give exactly one of --graph DIR or --project FILE")
+    report = (graph_ambiguity(graph_dir) if graph_dir is not None
+              else project_ambiguity(_project(project_file)))
+    if as_json:
+        _echo_json(plain_json(report_to_json(report)))
+    else:
+        click.echo(format_report(report))
+
+
+# --- draw -------------------------------------------------------------------------
+
+@cli.command()
+@click.option("--graph", "graph_dir", default=".", show_default=True,
+              type=click.Path(file_okay=False, path_type=Path),
+              help="A build directory written by 'netbuild build'.")
+@click.option("--word", help="Draw the arcs that output this word and the states around them.")
+@click.option("--state", type=click.IntRange(min=0), help="Draw the states around this state.")
+@click.option("--sentence", help="Draw the best path of these words (space-separated).")
+@click.option("--depth", type=click.IntRange(min=0),
+              help="States this many arcs around (default 1, or 0 with --sentence).")
+@click.option("--stage", help="The stage FST to draw from, by its manifest name "
+              "(default graph, or grammar with --sentence).")
+@click.option("--max-states", type=click.IntRange(min=1), default=200, show_default=True,
+              help="Refuse drawings with more states than this.")
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The drawing: .dot/.gv (DOT), .svg, .png or .pdf (needs graphviz's dot).")
+def draw(graph_dir: Path, word: str | None, state: int | None, sentence: str | None,
+         depth: int | None, stage: str | None, max_states: int, output: Path) -> None:
+    """Draws a small part of a graph: around a word or a state, or along a sentence."""
+    from .inspectors.draw import draw as run_draw
+
+    if sum(x is not None for x in (word, state, sentence)) != 1:
+        raise click.UsageError("give exactly one of --word, --state or --sentence")
+    words = None if sentence is None else sentence.split()
+    result = run_draw(graph_dir, output, word=word, state=state, sentence=words,
+                      depth=depth, stage=stage, max_states=max_states)
+    if result.note:
+        click.echo(f"warning: {result.note}", err=True)
+    click.echo(f"wrote {result.path} ({result.states} states, {result.arcs} arcs)")
+
+
+# --- trace ------------------------------------------------------------------------
+
+@cli.command()
+@click.argument("word")
+@click.option("--graph", "graph_dir", type=click.Path(file_okay=False, path_type=Path),
+              help="A build directory written by 'netbuild build'.")
+@click.option("--project", "project_file", type=_EXISTING,
+              help="A project file: read its inputs and build the word-level graph in memory.")
+@click.option("--json", "as_json", is_flag=True, help="Print the trace as JSON.")
+def trace(word: str, graph_dir: Path | None, project_file: Path | None,
+          as_json: bool) -> None:
+    """Follows WORD through every input and stage and says where it is lost and why."""
+    from .inspectors.trace import format_trace, trace_build, trace_project
+
+    if (graph_dir is None) == (project_file is None):
+        raise click.UsageError("give exactly one of --graph DIR or --project FILE")
+    if not word.strip() or len(word.split()) != 1:
+        raise click.UsageError(f"WORD must be one word, not {word!r}")
+    result = (trace_build(word, graph_dir) if graph_dir is not None
+              else trace_project(word, _project(project_file)))
+    if as_json:
+        _echo_json(result.to_json())
+    else:
+        for w in result.warnings:
+            click.echo(f"warning: {w}", err=True)
+        click.echo(format_trace(result))
+
+
+# --- replay -----------------------------------------------------------------------
+
+@cli.command()
+@click.option("--graph", "graph_dir", required=True,
+              type=click.Path(file_okay=False, path_type=Path),
+              help="A build directory written by 'netbuild build'.")
+@click.option("--nbest", type=click.IntRange(min=1), default=5, show_default=True,
+              help="How many distinct word sequences to show.")
+@click.option("--expect", help="Words expected for the phones (space-separated): "
+              "show their cost and the winner's margin.")
+@click.option("--max-words", type=click.IntRange(min=1),
+              help="Keep only hypotheses of at most this many words.")
+@click.option("--json", "as_json", is_flag=True, help="Print the result as JSON.")
+@click.argument("phones", nargs=-1)
+def replay(graph_dir: Path, nbest: int, expect: str | None, max_words: int | None,
+           as_json: bool, phones: tuple[str, ...]) -> None:
+    """Decodes PHONES through the word-level graph and prints the n best word sequences."""
+    from .errors import SymbolError
+    from .inspectors.replay import replay_build
+
+    if not phones:
+        raise click.UsageError("no phones given; pass them as arguments, e.g. k a b i n")
+    expected = None if expect is None else expect.split()
+    if expected is not None and not expected:
+        raise click.UsageError("--expect needs at least one word")
+    try:
+        result = replay_build(graph_dir, list(phones), nbest, expected, max_words)
+    except SymbolError as err:
+        if err.path != "PHONES":
+            raise
+        raise click.UsageError(str(err.message) + (f"; {err.hint}" if err.hint else "")
+                               ) from None
+    if as_json:
+        _echo_json(result.to_json())
+        return
+    click.echo(f"{'total':>9} {'lm':>9} {'pron':>9} {'silence':>9}  words")
+    for h in result.hypotheses:
+        click.echo(f"{_cost(h.total)} {_cost(h.lm)} {_cost(h.pronunciation)} "
+                   f"{_cost(h.silence)}  {' '.join(h.words)}")
+    if not result.hypotheses:
+        click.echo("no word sequence of the graph produces these phones")
+    if result.expect is not None:
+        if result.expected is None:
+            click.echo(f"expected '{' '.join(result.expect)}': {result.reason}")
+        else:
+            h = result.expected
+            click.echo(f"expected '{' '.join(h.words)}': total {h.total:.3f} (lm "
+                       f"{h.lm:.3f}, pron {h.pronunciation:.3f}, silence {h.silence:.3f}); "
+                       f"the winner beats it by {max(result.margin or 0.0, 0.0):.3f}")
 
 
 def main() -> None:

@@ -17,6 +17,8 @@ Relative paths are taken relative to the directory holding the project file::
     lm = "model.arpa"            # ARPA back-off language model, plain or .gz
     phones = "phones.txt"        # phone inventory; when absent the phones are
                                  # taken from the lexicon
+    context = "context.txt"      # context map; when given the full graph (H∘C∘L∘G
+                                 # over emission classes) is built, else L∘G
 
     [lexicon]
     layout = "plain"             # "plain" or "cmudict"
@@ -35,6 +37,10 @@ Relative paths are taken relative to the directory holding the project file::
     checks = true                # per-stage checks (the command line's --fast turns them off)
     determinize_max_memory = "8GiB"  # a size string, or an integer number of bytes
     determinize_timeout = 1800   # seconds (integer or float, > 0)
+    final_optimize = true        # full graph: determinize and minimize H∘C∘L∘G
+
+    [hmm]
+    transition_scale = 1.0       # full graph: scales self-loop and exit costs (>= 0)
 
 Size strings are a number (integer or decimal) followed by an optional unit:
 B, kB/KB, MB, GB, TB (powers of 1000) or KiB, MiB, GiB, TiB (powers of 1024);
@@ -42,7 +48,7 @@ units are case-sensitive apart from the k of kB.
 
 Command-line flags override the file: each setting has a flag with the key's
 name in kebab case (``--oov-policy``, ``--determinize-max-memory``, ...); the
-inputs are ``--lexicon``, ``--lm`` and ``--phones`` (relative to the current
+inputs are ``--lexicon``, ``--lm``, ``--phones`` and ``--context`` (relative to the current
 directory). `apply_overrides` takes the same names in snake case.
 """
 
@@ -114,12 +120,14 @@ class Project:
     lm: Path | None
     phones: Path | None
     options: BuildOptions = BuildOptions()
+    context: Path | None = None  # context map; when given the full graph is built
 
 
 # --- the schema --------------------------------------------------------------
-# (section, key) -> (kind, choices); kinds: path, bool, str, prob, size, seconds.
+# (section, key) -> (kind, choices); kinds: path, bool, str, prob, size, seconds, scale.
 _SCHEMA: dict[str, dict[str, tuple[str, tuple[str, ...]]]] = {
-    "inputs": {"lexicon": ("path", ()), "lm": ("path", ()), "phones": ("path", ())},
+    "inputs": {"lexicon": ("path", ()), "lm": ("path", ()), "phones": ("path", ()),
+               "context": ("path", ())},
     "lexicon": {
         "layout": ("str", ("plain", "cmudict")),
         "probabilities": ("bool", ()),
@@ -134,7 +142,9 @@ _SCHEMA: dict[str, dict[str, tuple[str, tuple[str, ...]]]] = {
         "checks": ("bool", ()),
         "determinize_max_memory": ("size", ()),
         "determinize_timeout": ("seconds", ()),
+        "final_optimize": ("bool", ()),
     },
+    "hmm": {"transition_scale": ("scale", ())},
 }
 
 # flag / apply_overrides name -> (section, key); the key names are unique across sections.
@@ -209,6 +219,11 @@ def _check_value(kind: str, choices: tuple[str, ...], value: Any) -> tuple[Any, 
             return parse_size(value), None
         except ValueError as err:
             return None, str(err)
+    if kind == "scale":
+        if isinstance(value, (int, float)) and not isinstance(value, bool) \
+                and value >= 0 and math.isfinite(value):
+            return float(value), None
+        return None, f"must be a number >= 0, not {value!r}; write e.g. 1.0"
     if kind == "seconds":
         if isinstance(value, (int, float)) and not isinstance(value, bool) \
                 and value > 0 and math.isfinite(value):
@@ -310,14 +325,14 @@ def _with_values(project: Project, values: dict[str, Any]) -> Project:
            "keep_stress": "keep_stress", "rescale": "rescale_probabilities",
            "silence_probability": "silence_probability"}
     build = {"push_weights", "fst_type", "checks", "determinize_max_memory",
-             "determinize_timeout"}
+             "determinize_timeout", "final_optimize", "transition_scale"}
     lex_opts = dataclasses.replace(
         o.lexicon, **{lex[k]: v for k, v in values.items() if k in lex})
     gram_opts = dataclasses.replace(
         o.grammar, **{k: v for k, v in values.items() if k == "oov_policy"})
     opts = dataclasses.replace(o, lexicon=lex_opts, grammar=gram_opts,
                                **{k: v for k, v in values.items() if k in build})
-    inputs = {k: v for k, v in values.items() if k in ("lexicon", "lm", "phones")}
+    inputs = {k: v for k, v in values.items() if k in ("lexicon", "lm", "phones", "context")}
     return dataclasses.replace(project, options=opts, **inputs)
 
 

@@ -19,6 +19,17 @@ Output directory (every name relative to it)::
     input.syms      the phone table with the auxiliary markers (L's and the graph's inputs)
     manifest.json   what was built, from what, and how (below)
 
+With a context map (``[inputs] context``) the graph is the full graph H∘C∘L∘G::
+
+    graph.fst       the full graph: emission classes in (``e<c>`` = c + 1), words out
+    input.syms      the emission-class table
+    wordgraph.fst   the word-level graph (vector), kept as an intermediate
+    phone.syms      the phone table with the auxiliary markers (L's and wordgraph's inputs)
+
+and the manifest gains ``"phone_symbols"``, ``"inputs"["context"]``, the extra stages
+(see `netbuild.full_pipeline`) and ``"hmm"``: ``{"transition_scale",
+"final_optimize", "models", "kinds", "emission_classes", "windows"}``.
+
 ``manifest.json`` is a JSON object:
 
 - ``"format"``: the string ``"netbuild-build"`` (what `load_build` recognises);
@@ -74,6 +85,10 @@ from .io.arpa import ArpaModel, read_arpa
 from .io.fstfile import write_fst
 from .io.lexicon import Lexicon, read_lexicon
 from .io.phones import PhoneInventory, inventory_from_lexicon, read_phones
+from .io.context_map import ContextMap, read_context_map
+from .builders.contexts import Coverage, check_coverage
+from .builders.context import window_models
+from .full_pipeline import FullGraph, build_full_graph
 from .pipeline import StageRecord, WordGraph, build_word_graph
 from .project import Project, require_inputs
 from .symbols import SENTENCE_END, SENTENCE_START, UNKNOWN, is_auxiliary
@@ -85,6 +100,8 @@ GRAMMAR_FILE = "grammar.fst"
 LEXICON_FILE = "lexicon.fst"
 WORD_SYMBOLS_FILE = "word.syms"
 INPUT_SYMBOLS_FILE = "input.syms"
+WORDGRAPH_FILE = "wordgraph.fst"  # full builds: the word-level graph kept beside graph.fst
+PHONE_SYMBOLS_FILE = "phone.syms"  # full builds: the phone table of L and the word graph
 _OOV_EXAMPLES = 8  # model words listed by name in the missing-pronunciation report
 
 Progress = Callable[[StageRecord], None]
@@ -97,6 +114,8 @@ class Inputs:
     inventory: PhoneInventory
     lexicon: Lexicon
     model: ArpaModel
+    cmap: ContextMap | None = None  # the context map, when the project names one
+    coverage: Coverage | None = None  # its contexts and their models
 
 
 @dataclasses.dataclass
@@ -109,6 +128,7 @@ class BuildResult:
     stages: list[StageRecord]
     warnings: list[Problem]
     graph: WordGraph
+    full: FullGraph | None = None  # the full graph, when a context map was given
 
 
 @dataclasses.dataclass
@@ -207,9 +227,34 @@ def read_inputs(project: Project, diagnostics: Diagnostics) -> Inputs | None:
             _absorb(diag, err)
     if lexicon is not None and model is not None:
         _report_oov(diag, project, model, lexicon)
+    cmap = coverage = None
+    if project.context is not None and inventory is not None:
+        try:
+            cmap = read_context_map(project.context, inventory, diag)
+        except InputError as err:
+            _absorb(diag, err)
+        if cmap is not None and lexicon is not None and not diag.has_errors(lexicon.path):
+            try:
+                coverage = check_coverage(lexicon, inventory, cmap, project.options.lexicon,
+                                          diag)
+            except InputError as err:
+                _absorb(diag, err)
     if inventory is None or lexicon is None or model is None:
         return None
-    return Inputs(inventory, lexicon, model)
+    if project.context is not None and (cmap is None or coverage is None):
+        return None
+    return Inputs(inventory, lexicon, model, cmap, coverage)
+
+
+def context_windows(inputs: Inputs) -> dict[tuple[str, ...], str]:
+    """Returns every raw phone window that can occur mapped to its model (for C)."""
+    cov, cmap = inputs.coverage, inputs.cmap
+    assert cov is not None and cmap is not None
+    cs = cov.contexts
+    tying = {cs.key(i): cmap.rules[k].model for i, k in enumerate(cov.winner.tolist())
+             if k >= 0}
+    windows = cs.windows
+    return window_models((windows.window(i) for i in range(len(windows))), tying, cmap)
 
 
 def check_inputs(project: Project) -> Diagnostics:
@@ -416,6 +461,11 @@ def build(project: Project, out_dir: str | os.PathLike,
 
         graph = build_word_graph(lexicon, grammar, opts, on_stage)
         input_symbols = lexicon.phone_symbols
+        full = None
+        if inputs.cmap is not None:
+            full = build_full_graph(graph, lexicon, inputs.cmap, context_windows(inputs),
+                                    opts, progress)
+        stages = list(graph.stages) + (list(full.stages) if full is not None else [])
         manifest: dict[str, Any] = {
             "format": MANIFEST_FORMAT,
             "version": __version__,
@@ -424,7 +474,7 @@ def build(project: Project, out_dir: str | os.PathLike,
             "input_symbols": INPUT_SYMBOLS_FILE,
             "intermediates": {"grammar": GRAMMAR_FILE, "lexicon": LEXICON_FILE,
                               "wordgraph": GRAPH_FILE},
-            "stages": [_stage_json(s) for s in graph.stages],
+            "stages": [_stage_json(s) for s in stages],
             "inputs": {"lexicon": _input_record(project.lexicon),
                        "lm": _input_record(project.lm),
                        "phones": _input_record(project.phones)},
@@ -441,16 +491,35 @@ def build(project: Project, out_dir: str | os.PathLike,
             },
             "options": plain_json(opts),
         }
+        if full is not None:
+            manifest["input_symbols"] = INPUT_SYMBOLS_FILE
+            manifest["phone_symbols"] = PHONE_SYMBOLS_FILE
+            manifest["intermediates"]["wordgraph"] = WORDGRAPH_FILE
+            manifest["inputs"]["context"] = _input_record(project.context)
+            manifest["hmm"] = {
+                "transition_scale": opts.transition_scale,
+                "final_optimize": opts.final_optimize,
+                "models": len(inputs.cmap.models),
+                "kinds": full.kind_table.num_kinds,
+                "emission_classes": full.kind_table.num_classes,
+                "windows": int(full.stages[0].details.get("windows", 0)),
+            }
         with atomic_directory(out_dir) as tmp:
-            write_fst(graph.fst, tmp / GRAPH_FILE, opts.fst_type)
+            if full is not None:
+                write_fst(full.fst, tmp / GRAPH_FILE, opts.fst_type)
+                write_fst(graph.fst, tmp / WORDGRAPH_FILE, "vector")
+                _write_symbols(full.input_symbols, tmp / INPUT_SYMBOLS_FILE)
+                _write_symbols(input_symbols, tmp / PHONE_SYMBOLS_FILE)
+            else:
+                write_fst(graph.fst, tmp / GRAPH_FILE, opts.fst_type)
             write_fst(grammar.fst, tmp / GRAMMAR_FILE, "vector")
             write_fst(lexicon.fst, tmp / LEXICON_FILE, "vector")
             _write_symbols(grammar.word_symbols, tmp / WORD_SYMBOLS_FILE)
-            _write_symbols(input_symbols, tmp / INPUT_SYMBOLS_FILE)
+            if full is None:
+                _write_symbols(input_symbols, tmp / INPUT_SYMBOLS_FILE)
             (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2) + "\n",
                                         encoding="utf-8")
-        return BuildResult(Path(out_dir), manifest, list(graph.stages), diag.warnings,
-                           graph)
+        return BuildResult(Path(out_dir), manifest, stages, diag.warnings, graph, full)
 
 
 # --- loading ---------------------------------------------------------------------------
@@ -576,6 +645,8 @@ def load_build(directory: str | os.PathLike) -> LoadedBuild:
                              "'netbuild build'", path=str(p))
     words = read_table(named("word_symbols"))
     phones = read_table(named("input_symbols"))
+    lexicon_inputs = read_table(named("phone_symbols")) if "phone_symbols" in manifest \
+        else phones
     graph = read_fst(named("graph"))
     grammar = read_fst(named("intermediates", "grammar"))
     lexicon = read_fst(named("intermediates", "lexicon"))
@@ -583,7 +654,7 @@ def load_build(directory: str | os.PathLike) -> LoadedBuild:
     graph.set_output_symbols(words)
     grammar.set_input_symbols(words)
     grammar.set_output_symbols(words)
-    lexicon.set_input_symbols(phones)
+    lexicon.set_input_symbols(lexicon_inputs)
     lexicon.set_output_symbols(words)
     return LoadedBuild(d, manifest, graph, grammar, lexicon, words, phones)
 

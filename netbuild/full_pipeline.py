@@ -1,0 +1,233 @@
+"""The full decoding graph: H∘C∘(L∘G) over emission classes, with HMM self-loops.
+
+- `FullGraph`: the graph, its stage records, kept FSTs and label tables.
+- `full_pipeline(cfst, hfst, kind_table, opts)`: the `Pipeline` from the word graph on.
+- `build_full_graph(word_graph, lexicon, cmap, contexts, opts, progress=None)`: the run.
+- `remove_markers_stage(ifst, marker_ids)`: auxiliary markers replaced by epsilon.
+- `minimize_unmarked_stage(ifst)`: encoded minimization that tolerates epsilon arcs.
+
+Stages, each followed by its checks (unless ``opts.checks`` is False):
+
+1. ``context`` and ``hmm`` (input records): C and H are built and checked.
+2. ``compose-context``: C∘LG, where LG is the word-level graph as the word pipeline
+   left it (determinized, minimized and, with ``push_weights``, log-pushed; its
+   markers are still on its input side). Pushed LG is used because every later stage
+   keeps its weights along each path, so the full graph starts from the best
+   distribution the word-level graph has.
+3. ``compose-hmm``: H∘CLG.
+4. ``determinize-hmm``: guarded transducer determinization (`netbuild.guard`); with the
+   delay of C and the markers still present the input is functional and
+   determinizable.
+5. ``remove-markers``: every auxiliary marker on the input side becomes epsilon.
+6. ``minimize-hmm``: labels and weights encoded, the acceptor minimized, decoded.
+7. ``self-loops``: `netbuild.builders.hmm.add_self_loops`, then the kinds are emission
+   classes + 1.
+
+With ``final_optimize`` False steps 4 and 6 are skipped: the graph is bigger but
+tropical-equivalent. Every stage records ``stochastic_deviation`` (max over states of
+|ln(outgoing probability + final)|, log semiring) in its details.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+from collections.abc import Callable, Mapping
+from typing import TYPE_CHECKING
+
+import pynini
+import pywrapfst
+
+from . import checks as chk
+from .builders.context import build_context
+from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
+                           make_model_symbols)
+from .errors import EmptyCompositionError, StageError
+from .io.context_map import ContextMap
+from .options import BuildOptions
+from .pipeline import (Pipeline, StageRecord, Step, WordGraph, _input_record,
+                       determinize_stage)
+
+if TYPE_CHECKING:
+    from .builders.lexicon import LexiconResult
+
+__all__ = ["FullGraph", "build_full_graph", "full_pipeline", "minimize_unmarked_stage",
+           "remove_markers_stage"]
+
+
+@dataclasses.dataclass
+class FullGraph:
+    """The full graph and what went into it.
+
+    `intermediates` holds "context" (C), "hmm" (H), the kept stage results and "graph".
+    """
+
+    fst: pynini.Fst
+    stages: list[StageRecord]
+    intermediates: dict[str, pynini.Fst]
+    kind_table: KindTable
+    model_symbols: pynini.SymbolTable
+    input_symbols: pynini.SymbolTable  # the emission-class table of the final graph
+
+
+def _compose(left: pynini.Fst, right: pynini.Fst, stage: str, what: str) -> pynini.Fst:
+    """Constructively composes, sorting `left` on output labels; trimmed result."""
+    try:
+        ofst = pynini.compose(pynini.arcsort(left, sort_type="olabel"), right,
+                              connect=True)
+    except pywrapfst.FstError as err:
+        raise StageError(stage, f"OpenFst could not compose {what} ({err})",
+                         "this is a netbuild bug: the symbol tables do not match") from err
+    if ofst.start() == pynini.NO_STATE_ID or ofst.num_states() == 0:
+        raise EmptyCompositionError(
+            stage, f"{what} has no path: the context map's C accepts none of the phone "
+            "sequences of the word-level graph",
+            "check that the context map's phones are the lexicon's phones")
+    ofst.arcsort(sort_type="ilabel")
+    return ofst
+
+
+def remove_markers_stage(ifst: pynini.Fst, marker_ids: list[int]) -> pynini.Fst:
+    """Constructively relabels the auxiliary markers `marker_ids` on the input side to
+    epsilon (OpenFst's relabel, one pass in C++)."""
+    ofst = ifst.copy()
+    if marker_ids:
+        ofst.relabel_pairs(ipairs=[(m, 0) for m in marker_ids])
+    return ofst
+
+
+def minimize_unmarked_stage(ifst: pynini.Fst) -> pynini.Fst:
+    """Constructively minimizes `ifst` as an acceptor of (input, output, weight) codes.
+
+    After the markers became epsilon, a state may have two arcs with the same code, so
+    the encoded acceptor may be non-deterministic; OpenFst then merges only states
+    with the same future (``allow_nondet``), which keeps the weighted relation. Weights
+    stay where they are and output labels never move.
+    """
+    mapper = pynini.EncodeMapper(ifst.arc_type(), encode_labels=True, encode_weights=True)
+    ofst = pynini.encode(ifst, mapper)
+    ofst.minimize(allow_nondet=True)
+    ofst = pynini.decode(ofst, mapper)
+    ofst.set_input_symbols(ifst.input_symbols())
+    ofst.set_output_symbols(ifst.output_symbols())
+    return ofst
+
+
+_STRUCTURE = (chk.check_nonempty, chk.check_connected, chk.check_labels)
+
+
+def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
+                  opts: BuildOptions) -> Pipeline:
+    """Returns the pipeline from the word-level graph to the full graph (see module)."""
+
+    def measured(stage: Callable[[pynini.Fst, dict], pynini.Fst]
+                 ) -> Callable[[pynini.Fst, dict], pynini.Fst]:
+        def run(f: pynini.Fst, details: dict) -> pynini.Fst:
+            out = stage(f, details)
+            details["stochastic_deviation"] = chk.stochasticity_deviation(out)
+            return out
+        return run
+
+    def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
+        return _compose(cfst, lg, "compose-context", "C∘LG")
+
+    def compose_hmm(clg: pynini.Fst, details: dict) -> pynini.Fst:
+        return _compose(hfst, clg, "compose-hmm", "H∘CLG")
+
+    def determinize(f: pynini.Fst, details: dict) -> pynini.Fst:
+        return determinize_stage(f, opts, details=details)
+
+    def unmark(f: pynini.Fst, details: dict) -> pynini.Fst:
+        details["markers"] = list(kind_table.markers)
+        return remove_markers_stage(f, kind_table.marker_ids())
+
+    def minimize(f: pynini.Fst, details: dict) -> pynini.Fst:
+        details["method"] = "encoded"
+        return minimize_unmarked_stage(f)
+
+    def self_loops(f: pynini.Fst, details: dict) -> pynini.Fst:
+        details["transition_scale"] = opts.transition_scale
+        details["kinds"] = kind_table.num_kinds
+        ofst = add_self_loops(f, kind_table, opts.transition_scale)
+        ofst.arcsort(sort_type="ilabel")
+        return ofst
+
+    deterministic = _STRUCTURE + (chk.check_input_deterministic,)
+    steps = [Step("compose-context", measured(compose_context), _STRUCTURE, "clg"),
+             Step("compose-hmm", measured(compose_hmm), _STRUCTURE, "hclg_raw")]
+    if opts.final_optimize:
+        steps.append(Step("determinize-hmm", measured(determinize), deterministic,
+                          "determinized_full"))
+    steps.append(Step("remove-markers", measured(unmark),
+                      _STRUCTURE + (chk.check_no_auxiliary_markers,), "unmarked"))
+    if opts.final_optimize:
+        steps.append(Step("minimize-hmm", measured(minimize),
+                          _STRUCTURE + (chk.check_no_auxiliary_markers,), "minimized_full"))
+    steps.append(Step("self-loops", measured(self_loops),
+                      _STRUCTURE + (chk.check_no_auxiliary_markers, chk.check_emission_inputs,
+                                    chk.check_word_outputs)))
+    return Pipeline(steps)
+
+
+def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: ContextMap,
+                     contexts: Mapping[tuple[str, ...], str], opts: BuildOptions,
+                     progress: Callable[[StageRecord], None] | None = None) -> FullGraph:
+    """Builds the full graph from the word-level graph, the context map and the windows.
+
+    Args:
+      word_graph: from `netbuild.pipeline.build_word_graph` (its markers kept).
+      lexicon: L's result (its phone table is C's output table).
+      cmap: the validated context map.
+      contexts: every raw phone window that can occur mapped to its model name
+        (`netbuild.builders.context.window_models`).
+      opts: the build options (`final_optimize`, `transition_scale`, limits, checks).
+      progress: called with each stage's record as soon as it is done.
+
+    Returns:
+      A `FullGraph`; its FST reads emission classes (``e<c>`` at ``c + 1``) and writes
+      words.
+
+    Raises:
+      EmptyCompositionError, DeterminizeError, StageError: input causes or limits.
+      CheckFailed: a netbuild bug (evidence saved on disk).
+    """
+    phones = lexicon.phone_symbols
+    words = word_graph.fst.output_symbols()
+    records: list[StageRecord] = []
+
+    started = time.perf_counter()
+    models = make_model_symbols(cmap, phones)
+    cfst = build_context(contexts, cmap, phones, models)
+    records.append(_input_record("context", cfst, time.perf_counter() - started))
+    started = time.perf_counter()
+    hfst, kinds = build_hmm(cmap, models)
+    records.append(_input_record("hmm", hfst, time.perf_counter() - started))
+    records[0].details["windows"] = len(contexts)
+    records[1].details["kinds"] = kinds.num_kinds
+    if opts.checks:
+        for name, fst, isyms, osyms in (("context", cfst, models, phones),
+                                        ("hmm", hfst, kinds.symbols, models)):
+            ctx = chk.CheckContext(name, isyms, osyms, output_aux_allowed=True)
+            for check in (chk.check_nonempty, chk.check_labels):
+                check(fst, ctx)
+    for record in records:
+        if progress is not None:
+            progress(record)
+
+    emissions = emission_symbols(kinds)
+
+    def context(stage: str) -> chk.CheckContext:
+        if stage == "compose-context":
+            return chk.CheckContext(stage, models, words)
+        if stage == "self-loops":
+            return chk.CheckContext(stage, emissions, words)
+        return chk.CheckContext(stage, kinds.symbols, words)
+
+    lg = word_graph.fst
+    final, stage_records, kept = full_pipeline(cfst, hfst, kinds, opts).run(
+        lg, checks=opts.checks, context=context, progress=progress)
+    final.set_input_symbols(emissions)
+    final.set_output_symbols(words)
+    intermediates = {"context": cfst, "hmm": hfst, **kept, "graph": final}
+    return FullGraph(final, records + stage_records, intermediates, kinds, models,
+                     emissions)
