@@ -32,6 +32,7 @@ import pywrapfst
 from .errors import CheckFailed, EmptyCompositionError, InputCheckFailed
 from .io.fstfile import FstArrays, fst_to_arrays
 from .symbols import BACKOFF, is_auxiliary
+from .bulk import unique_sorted
 
 _MAX_NAMED = 8  # words listed in one message; the rest are counted
 
@@ -203,7 +204,7 @@ def check_no_input_epsilon_cycles(fst: pynini.Fst, ctx: CheckContext) -> None:
 
 
 def _out_of_table(labels: np.ndarray, table: pynini.SymbolTable) -> list[int]:
-    uniq = np.unique(labels)
+    uniq = unique_sorted(labels)
     if uniq.size == 0:
         return []
     bad = uniq[(uniq < 0) | (uniq >= table.available_key())].tolist()
@@ -280,7 +281,7 @@ def lexicon_pronunciations(lfst: pynini.Fst,
 def _word_labels(gfst: pynini.Fst | None) -> set[int] | None:
     if gfst is None:
         return None
-    return set(np.unique(fst_to_arrays(gfst).ilabel).tolist())
+    return set(unique_sorted(fst_to_arrays(gfst).ilabel).tolist())
 
 
 def unmarked_homophones(lfst: pynini.Fst, gfst: pynini.Fst | None = None,
@@ -368,8 +369,8 @@ def check_words_reachable(fst: pynini.Fst, ctx: CheckContext) -> None:
     """Raises when words of G never appear on the output side of L∘G."""
     if ctx.gfst is None:
         return
-    g_words = set(np.unique(fst_to_arrays(ctx.gfst).olabel).tolist()) - {0}
-    kept = set(np.unique(fst_to_arrays(fst).olabel).tolist())
+    g_words = set(unique_sorted(fst_to_arrays(ctx.gfst).olabel).tolist()) - {0}
+    kept = set(unique_sorted(fst_to_arrays(fst).olabel).tolist())
     lost = sorted(g_words - kept)
     if not lost:
         return
@@ -421,7 +422,7 @@ def check_emission_inputs(fst: pynini.Fst, ctx: CheckContext) -> None:
     """Raises unless every input label is epsilon or an emission class ``e<c>``."""
     arcs = fst_to_arrays(fst)
     table = ctx.isymbols
-    uniq = np.unique(arcs.ilabel).tolist()
+    uniq = unique_sorted(arcs.ilabel).tolist()
     bad = [k for k in uniq if k != 0 and (table is None or not table.member(k)
                                          or not table.find(k).startswith("e")
                                          or not table.find(k)[1:].isdigit()
@@ -435,7 +436,7 @@ def check_word_outputs(fst: pynini.Fst, ctx: CheckContext) -> None:
     """Raises unless every output label is epsilon or a word of the word table."""
     arcs = fst_to_arrays(fst)
     table = ctx.osymbols
-    uniq = np.unique(arcs.olabel).tolist()
+    uniq = unique_sorted(arcs.olabel).tolist()
     bad = [k for k in uniq if k != 0 and (table is None or not table.member(k)
                                          or is_auxiliary(table.find(k)))]
     if bad:

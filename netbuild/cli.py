@@ -504,9 +504,13 @@ def replay(graph_dir: Path, nbest: int, expect: str | None, max_words: int | Non
             click.echo(f"expected '{' '.join(result.expect)}': {result.reason}")
         else:
             h = result.expected
+            margin = result.margin if result.margin is not None else math.inf
+            verdict = ("it is the best hypothesis" if margin <= 1e-3 or
+                       result.hypotheses[0].words == h.words
+                       else f"the winner beats it by {margin:.3f}")
             click.echo(f"expected '{' '.join(h.words)}': total {h.total:.3f} (lm "
                        f"{h.lm:.3f}, pron {h.pronunciation:.3f}, silence {h.silence:.3f}); "
-                       f"the winner beats it by {max(result.margin or 0.0, 0.0):.3f}")
+                       f"{verdict}")
 
 
 def main() -> None:

@@ -197,7 +197,13 @@ def log_potentials(ifst: pynini.Fst, max_iterations: int = 3000,
     final = np.exp(-arcs.final_weights.astype(np.float64))
     ns = arcs.num_states
     d = final.copy()
-    for _ in range(max_iterations):
+    # The change between passes obeys e' = M e, so the ratio of successive change norms
+    # tends to the spectral radius of M. Once that ratio has stayed at or above 1 for a
+    # while, the total diverges and further passes only cost time (on a 1.7M-state
+    # graph each pass takes about half a second).
+    previous = np.inf
+    growing = 0
+    for iteration in range(max_iterations):
         nxt = final + np.bincount(arcs.src, weights=prob * d[arcs.dst], minlength=ns)
         if not np.all(np.isfinite(nxt)):
             return None
@@ -206,7 +212,16 @@ def log_potentials(ifst: pynini.Fst, max_iterations: int = 3000,
         if np.all(change <= rtol * np.maximum(d, 1e-300)):
             with np.errstate(divide="ignore"):
                 return -np.log(d)
+        norm = float(change.sum())
+        growing = growing + 1 if norm >= previous * (1.0 - 1e-6) else 0
+        previous = norm
+        if iteration >= _WARMUP_PASSES and growing >= _GROWING_PASSES:
+            return None
     return None
+
+
+_WARMUP_PASSES = 20  # passes before the growth of the change is trusted
+_GROWING_PASSES = 10  # consecutive non-shrinking passes that mean divergence
 
 
 def push_stage(ifst: pynini.Fst, details: dict | None = None) -> pynini.Fst:

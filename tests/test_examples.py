@@ -250,7 +250,8 @@ def demo_build(tmp_path_factory):
 def test_demo_build_gives_each_homophone_its_own_marker(demo_build, lexicon):
     from netbuild.checks import lexicon_pronunciations
 
-    words, phones = demo_build.word_symbols, demo_build.input_symbols
+    # L's phone table (the build's input table is the emission classes of the full graph)
+    words, phones = demo_build.word_symbols, demo_build.lexicon.input_symbols()
     in_l = {w: {tuple(phones.find(i) for i in seq) for seq in seqs}
             for w, seqs in ((words.find(k), v)
                             for k, v in lexicon_pronunciations(demo_build.lexicon).items())}

@@ -219,8 +219,9 @@ def test_every_setting_has_an_override(inputs: Path):
     values = {"layout": "cmudict", "probabilities": True, "keep_stress": False,
               "rescale": False, "silence_probability": 0.1, "oov_policy": "fail",
               "push_weights": False, "fst_type": "const", "checks": False,
-              "determinize_max_memory": 1000, "determinize_timeout": 5.0}
-    assert set(values) | {"lexicon", "lm", "phones"} == set(SETTINGS)
+              "determinize_max_memory": 1000, "determinize_timeout": 5.0,
+              "final_optimize": False, "transition_scale": 0.5}
+    assert set(values) | {"lexicon", "lm", "phones", "context"} == set(SETTINGS)
     out = apply_overrides(None, **values)
     o = out.options
     assert (o.lexicon.layout, o.lexicon.has_probabilities, o.lexicon.keep_stress,
@@ -229,6 +230,7 @@ def test_every_setting_has_an_override(inputs: Path):
     assert o.grammar.oov_policy == "fail"
     assert (o.push_weights, o.fst_type, o.checks, o.determinize_max_memory,
             o.determinize_timeout) == (False, "const", False, 1000, 5.0)
+    assert (o.final_optimize, o.transition_scale) == (False, 0.5)
 
 
 def test_override_errors_are_collected(tmp_path: Path):

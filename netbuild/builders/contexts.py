@@ -52,6 +52,7 @@ from ..io.context_map import ANY, CLASS_PREFIX, EDGE, ContextMap, Model, TyingRu
 from ..io.lexicon import Lexicon
 from ..io.phones import PhoneInventory, suggestion
 from ..options import LexiconOptions
+from ..bulk import unique_sorted
 
 Context = tuple[tuple[str, ...], str, tuple[str, ...]]
 MAX_LISTED = 20  # uncovered contexts reported one by one; the rest are counted
@@ -106,10 +107,14 @@ class _Alphabet:
         self.ci = ci
 
     def encode(self, mat: np.ndarray) -> np.ndarray:
-        return mat.astype(np.int64) @ self.weights
+        codes = np.zeros(len(mat), dtype=np.int64)
+        for pos in range(self.n):  # column by column: no int64 copy of the matrix
+            codes += mat[:, pos].astype(np.int64) * self.weights[pos]
+        return codes
 
     def decode(self, codes: np.ndarray) -> np.ndarray:
-        mat = np.empty((len(codes), self.n), dtype=np.int64)
+        dtype = np.int16 if self.base < 2**15 else np.int32
+        mat = np.empty((len(codes), self.n), dtype=dtype)
         for pos in range(self.n):
             mat[:, pos] = (codes // self.weights[pos]) % self.base
         return mat
@@ -189,7 +194,7 @@ class WindowSet:
     """
 
     codes: np.ndarray  # int64, sorted, distinct
-    tokens: np.ndarray  # (len, LEFT+1+RIGHT) int64 ids into `symbols`
+    tokens: np.ndarray  # (len, LEFT+1+RIGHT) int16 ids into `symbols`
     symbols: list[str]
     _source: list  # per row: a callable giving (window ids, owner ids)
     _first: np.ndarray  # per row: index into the concatenated candidates
@@ -480,7 +485,7 @@ def _tie_rows(mat: np.ndarray, cmap: ContextMap, symbols: list[str]
     """
     L = cmap.left
     n_rules = len(cmap.rules)
-    winner = np.full(len(mat), -1, dtype=np.int64)
+    winner = np.full(len(mat), -1, dtype=np.int32)
     matched = np.zeros(n_rules, dtype=bool)
     tables = [[_token_table(cmap, t, symbols) for t in (*r.left, r.centre, *r.right)]
               for r in cmap.rules]
@@ -513,7 +518,7 @@ def _tie_rows(mat: np.ndarray, cmap: ContextMap, symbols: list[str]
             if not free.any():
                 break
     won = np.zeros(n_rules, dtype=bool)
-    won[np.unique(winner[winner >= 0])] = True
+    won[unique_sorted(winner[winner >= 0])] = True
     return winner, matched, won
 
 
@@ -572,7 +577,7 @@ class Coverage:
 
     @property
     def models_used(self) -> int:
-        return len({int(k) for k in np.unique(self.winner[self.winner >= 0])})
+        return len({int(k) for k in unique_sorted(self.winner[self.winner >= 0])})
 
 
 def check_coverage(lexicon: Lexicon, inventory: PhoneInventory, cmap: ContextMap,

@@ -58,6 +58,7 @@ import pynini
 from ..errors import ArpaError
 from ..io.arpa import ArpaModel
 from ..io.fstfile import arrays_to_fst
+from ..bulk import unique_sorted
 from ..symbols import (BACKOFF, EPSILON, SENTENCE_END, SENTENCE_START, is_auxiliary,
                        make_symbol_table)
 
@@ -219,7 +220,7 @@ class _Histories:
         ctx_rows = model.orders[top].words[:, :top] if top >= 1 else None
         for length in range(top, 0, -1):
             ngram_keys = np.sort(pack(model.orders[length - 1].words))
-            ctx_keys = np.unique(pack(ctx_rows))
+            ctx_keys = unique_sorted(pack(ctx_rows))
             if length == 1 and self.bos >= 0:
                 ctx_keys = np.union1d(ctx_keys, np.array([self.bos], dtype=np.int64))
             contexts[length] = ctx_keys

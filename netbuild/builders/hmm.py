@@ -46,6 +46,7 @@ from ..errors import PhoneMapError, Problem, StageError
 from ..io.context_map import ContextMap
 from ..io.fstfile import arrays_to_fst, fst_to_arrays
 from ..symbols import EPSILON, is_auxiliary, make_symbol_table
+from ..bulk import unique_sorted
 
 __all__ = ["KindTable", "add_self_loops", "build_hmm", "emission_symbols",
            "make_model_symbols"]
@@ -209,7 +210,7 @@ def add_self_loops(ifst: pynini.Fst, kind_table: KindTable,
     if a.start >= 0:
         plain[a.start] = True
     # One (state, kind) pair per distinct looping kind entering a state.
-    keys = np.unique(dst[looped] << 32 | ilab[looped].astype(np.int64))
+    keys = unique_sorted(dst[looped] << 32 | ilab[looped].astype(np.int64))
     pair_state = keys >> 32
     pair_kind = (keys & 0xFFFFFFFF).astype(np.int64)
     first_of_state = np.ones(keys.shape[0], dtype=bool)

@@ -52,7 +52,8 @@ from ..errors import InputError, SymbolError
 from ..io.fstfile import arrays_to_fst, fst_to_arrays
 from ..io.phones import suggestion
 from ..symbols import BACKOFF, EPSILON, is_auxiliary
-from .score import score_sentences
+# The sibling scorer's index is built once per Replayer rather than once per sentence.
+from .score import _GrammarIndex
 
 __all__ = ["Hypothesis", "ReplayResult", "Replayer", "replay_build", "replayer_for_build"]
 
@@ -151,6 +152,7 @@ class Replayer:
         self.graph = _markers_to_epsilon(wordgraph)
         self.lexicon = _markers_to_epsilon(lexicon_fst)
         self.grammar = grammar
+        self._lm = _GrammarIndex(grammar)
         self._prons = lexicon_pronunciations(lexicon_fst)
         self._limits: dict[int, pynini.Fst] = {}
         self.silence_phone, self.with_silence, self.without_silence = \
@@ -203,7 +205,7 @@ class Replayer:
 
     def _hypotheses(self, phone_ids: list[int], found: list[tuple[tuple[str, ...], float]]
                     ) -> list[Hypothesis]:
-        lms = score_sentences(self.grammar, [list(w) for w, _ in found])
+        lms = [self._lm.score(list(w)) for w, _ in found]
         out = []
         for (words, total), lm_score in zip(found, lms):
             lm = lm_score.best_path_cost

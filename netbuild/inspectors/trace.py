@@ -776,7 +776,13 @@ def build_sources(directory: str | Path) -> TraceSources:
     src.graphs = {"grammar": loaded.grammar, "lexicon_fst": loaded.lexicon}
     word_file = inter.get("wordgraph")
     if word_file and word_file != manifest.get("graph"):
-        src.graphs["wordgraph"] = pynini.Fst.read(str(d / word_file))
+        path = d / word_file
+        try:
+            src.graphs["wordgraph"] = pynini.Fst.read(str(path))
+        except Exception as err:  # OpenFst raises its own error types
+            raise InputError(f"cannot read the word-level graph ({err})",
+                             "rebuild the directory with 'netbuild build'",
+                             path=str(path)) from err
         src.graphs["graph"] = loaded.graph
     else:
         src.graphs["wordgraph"] = loaded.graph

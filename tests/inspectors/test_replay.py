@@ -38,8 +38,13 @@ def replayer(demo):
     return replayer_for_build(demo)
 
 
+@pytest.fixture(scope="module")
+def sources(demo):
+    return build_sources(demo)
+
+
 @pytest.mark.slow
-def test_every_pronunciation_replays_to_its_word_or_traced_competitor(demo, replayer):
+def test_every_pronunciation_replays_to_its_word_or_traced_competitor(sources, replayer):
     """Each demo pronunciation, spoken alone, gives its own word as the best one-word
     hypothesis, unless trace names a cheaper homophone: then replay returns that one.
 
@@ -48,7 +53,6 @@ def test_every_pronunciation_replays_to_its_word_or_traced_competitor(demo, repl
     the two must agree (# common practice, no source: an optimized graph keeps the
     cheapest path of each phone/word pair).
     """
-    sources = build_sources(demo)
     checked = lost = absent = 0
     for word in sources.lexicon.words():
         trace = sources.trace(word)
@@ -130,11 +134,11 @@ def test_silence_is_counted_per_boundary(tmp_path):
     assert abs(best.rounding) < 1e-3
 
 
-def test_expect_margin_matches_trace(demo, replayer):
+def test_expect_margin_matches_trace(sources, replayer):
     result = replayer.replay("b r ei k".split(), nbest=5, expect=["brake"])
     assert result.hypotheses[0].words == ("break",)
     assert result.expected.words == ("brake",)
-    trace = build_sources(demo).trace("brake")
+    trace = sources.trace("brake")
     (u,) = trace.stage_named("lexicon").details["one_word_utterances"]
     assert result.margin == pytest.approx(-u["margin"], abs=1e-3)
     none = replayer.replay("b r ei k".split(), expect=["cabin"])

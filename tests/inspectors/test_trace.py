@@ -17,7 +17,7 @@ import pynini
 import pytest
 
 from netbuild.cli import cli
-from netbuild.inspectors.trace import (CAUSES, build_sources, label_paths,
+from netbuild.inspectors.trace import (CAUSES, label_paths,
                                        near_pronunciations, project_sources, trace_build,
                                        trace_project)
 from netbuild.project import read_project
@@ -271,3 +271,28 @@ def test_cli_bad_files(runner, tmp_path):
     result = run(runner, "trace", "dock", "--project", project)
     assert result.exit_code == 1
     assert result.stderr.startswith(f"{bad}:")
+
+
+def test_full_graph_build_is_traced_through_every_stage(tmp_path):
+    """With a context map the build's graph is the full graph; trace examines the
+    context map and the full graph too (fixtures of tests/data/full, read only)."""
+    from netbuild.workflow import build
+
+    full = DATA.parent / "full"
+    project = tmp_path / "project.toml"
+    project.write_text(
+        "[inputs]\n"
+        + "".join(f'{k} = "{full / v}"\n' for k, v in (
+            ("phones", "phones.txt"), ("lexicon", "lexicon.txt"), ("lm", "bigram.arpa"),
+            ("context", "triphone.ctx")))
+        + "[lexicon]\nprobabilities = true\n", encoding="utf-8")
+    build(read_project(project), tmp_path / "out")
+    t = trace_build("note", tmp_path / "out")
+    assert t.verdict == "ok"
+    assert [s.name for s in t.stages] == ["lexicon", "language_model", "context", "grammar",
+                                          "lexicon_fst", "wordgraph", "graph"]
+    assert all(s.present for s in t.stages)
+    graph = t.stage_named("graph").details
+    assert graph["reachable"] and graph["best_cost"] is not None
+    from_project = trace_project("note", read_project(project))
+    assert from_project.stage_named("context").present is True
