@@ -59,6 +59,10 @@ PHONES = CONSONANTS + VOWELS  # 40 phones
 SILENCE_PHONE = "pause"
 NOISE_PHONE = "hum"
 
+# A partition of PHONES into five groups (three of consonants, two of vowels).
+PHONE_GROUPS = {"cgA": CONSONANTS[:10], "cgB": CONSONANTS[10:19], "cgC": CONSONANTS[19:],
+                "vgA": VOWELS[:6], "vgB": VOWELS[6:]}
+
 _SYLLABLES = [c + v for c in "bdfgklmnprstvz" for v in "aeiou"]  # 70 spelling syllables
 _MAX_PRON = 10  # longest generated pronunciation
 
@@ -226,11 +230,14 @@ def write_lexicon(lexicon: SynthLexicon, path: str | Path, probabilities: bool =
 
 
 def write_phones(path: str | Path) -> None:
-    """Writes the phone inventory: one phone per line, roles, and two classes."""
+    """Writes the phone inventory: one phone per line, roles, two classes and the five
+    `PHONE_GROUPS`."""
     text = ["# synthetic phone set: 28 consonants, 12 vowels, a pause and a hum"]
     text += PHONES
     text += [f"{SILENCE_PHONE} silence", f"{NOISE_PHONE} noise"]
     text += ["consonant: " + " ".join(CONSONANTS), "vowel: " + " ".join(VOWELS)]
+    # Finer groups (a partition of PHONES) for the tying rules of bench/synth_context.py.
+    text += [f"{name}: " + " ".join(members) for name, members in PHONE_GROUPS.items()]
     Path(path).write_text("\n".join(text) + "\n", encoding="utf-8")
 
 

@@ -11,9 +11,11 @@ Stages, each followed by its checks (unless ``opts.checks`` is False):
 1. ``context`` and ``hmm`` (input records): C and H are built and checked.
 2. ``compose-context``: C∘LG, where LG is the word-level graph as the word pipeline
    left it (determinized, minimized and, with ``push_weights``, log-pushed; its
-   markers are still on its input side). Pushed LG is used because every later stage
-   keeps its weights along each path, so the full graph starts from the best
-   distribution the word-level graph has.
+   markers are still on its input side). Measured on the ropeway demo (triphones,
+   2 cores): from the pushed LG the final graph has 69 797 states / 170 804 arcs in
+   3.6 s (max stochastic deviation 7.04), from the unpushed one 69 697 / 170 496 in
+   3.1 s (6.94). The difference is small either way; the pushed LG is used so the
+   graph a decoder reads carries the word-level push.
 3. ``compose-hmm``: H∘CLG.
 4. ``determinize-hmm``: guarded transducer determinization (`netbuild.guard`); with the
    delay of C and the markers still present the input is functional and
@@ -24,7 +26,8 @@ Stages, each followed by its checks (unless ``opts.checks`` is False):
    classes + 1.
 
 With ``final_optimize`` False steps 4 and 6 are skipped: the graph is bigger but
-tropical-equivalent. Every stage records ``stochastic_deviation`` (max over states of
+tropical-equivalent (demo: 96 627 states / 238 879 arcs in 1.7 s, against
+69 797 / 170 804 in 3.6 s optimized). Every stage records ``stochastic_deviation`` (max over states of
 |ln(outgoing probability + final)|, log semiring) in its details.
 """
 

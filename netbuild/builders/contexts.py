@@ -178,6 +178,17 @@ def _reachable_tails(starts: list[_Item], pieces: list[_Item], width: int
     return seen
 
 
+def _unique_first(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Returns the sorted distinct values of `a` and the index of each one's first
+    occurrence (as ``np.unique(a, return_index=True)``, by a stable sort)."""
+    order = np.argsort(a, kind="stable")
+    s = a[order]
+    keep = np.ones(len(s), dtype=bool)
+    if len(s):
+        np.not_equal(s[1:], s[:-1], out=keep[1:])
+    return s[keep], order[keep]
+
+
 def _windows_of(toks: tuple[int, ...], owners: tuple[int, ...], n: int, centre: int
                 ) -> Iterable[tuple[tuple[int, ...], tuple[int, ...]]]:
     for s in range(len(toks) - n + 1):
@@ -208,9 +219,16 @@ class WindowSet:
 
     def provenance(self, i: int) -> Provenance:
         owners = _owners_at(self._source, int(self._first[i]))
-        distinct = list(dict.fromkeys(o for o in owners if o >= 0))
-        return Provenance(tuple(self._owners[o][0] for o in distinct),
-                          tuple(self._owners[o][1] for o in distinct), self.window(i))
+        # Owner 2k+1 marks the first phone of pronunciation k, 2k its other phones,
+        # so repeated words ('ah ah ah') stay apart.
+        words: list[int] = []
+        previous = -1
+        for o in owners:
+            if o >= 0 and (o % 2 == 1 or previous < 0 or previous // 2 != o // 2):
+                words.append(o // 2)
+            previous = o
+        return Provenance(tuple(self._owners[k][0] for k in words),
+                          tuple(self._owners[k][1] for k in words), self.window(i))
 
 
 def _owners_at(source: list, index: int) -> tuple[int, ...]:
@@ -268,7 +286,7 @@ def occurring_windows(lexicon: Lexicon, inventory: PhoneInventory, cmap: Context
 
     pieces: list[_Item] = []
     for k, ids in enumerate(prons):
-        own = (k,) * len(ids)
+        own = (2 * k + 1,) + (2 * k,) * (len(ids) - 1)
         if not mandatory:
             pieces.append((ids, own))
         if sil_id is not None:
@@ -341,7 +359,7 @@ def occurring_windows(lexicon: Lexicon, inventory: PhoneInventory, cmap: Context
 
     if code_blocks:
         all_codes = np.concatenate(code_blocks)
-        codes, first = np.unique(all_codes, return_index=True)
+        codes, first = _unique_first(all_codes)
     else:
         codes = np.zeros(0, dtype=np.int64)
         first = np.zeros(0, dtype=np.int64)
@@ -421,7 +439,7 @@ def occurring_context_set(lexicon: Lexicon, inventory: PhoneInventory, cmap: Con
     windows = occurring_windows(lexicon, inventory, cmap, options)
     ab = _Alphabet(inventory, cmap)
     vis = _visible_rows(windows.tokens, ab, cmap.independent_is_context)
-    codes, row = np.unique(ab.encode(vis), return_index=True)
+    codes, row = _unique_first(ab.encode(vis))
     return ContextSet(codes, ab.decode(codes), windows, row, cmap.left)
 
 
@@ -519,6 +537,22 @@ def _tie_rows(mat: np.ndarray, cmap: ContextMap, symbols: list[str]
                 break
     won = np.zeros(n_rules, dtype=bool)
     won[unique_sorted(winner[winner >= 0])] = True
+    # Rules that never win: do they match anything at all (or only shadowed contexts)?
+    for k in np.flatnonzero(~won & ~matched).tolist():
+        for lo, hi in zip(starts.tolist(), stops.tolist()):
+            c = int(centres[lo])
+            if not tables[k][L][c]:
+                continue
+            if symbols[c] in ci:
+                matched[k] = True
+                break
+            hit = np.ones(hi - lo, dtype=bool)
+            for col, table in enumerate(tables[k]):
+                if col != L:
+                    hit &= table[mat[lo:hi, col]]
+            if hit.any():
+                matched[k] = True
+                break
     return winner, matched, won
 
 
@@ -575,9 +609,13 @@ class Coverage:
     uncovered: int
     unused_rules: list[TyingRule]
 
+    rules: list[TyingRule] = dataclasses.field(default_factory=list)  # the map's rules
+
     @property
     def models_used(self) -> int:
-        return len({int(k) for k in unique_sorted(self.winner[self.winner >= 0])})
+        """The number of distinct models some occurring context maps to."""
+        return len({self.rules[int(k)].model
+                    for k in unique_sorted(self.winner[self.winner >= 0])})
 
 
 def check_coverage(lexicon: Lexicon, inventory: PhoneInventory, cmap: ContextMap,
@@ -622,4 +660,5 @@ def check_coverage(lexicon: Lexicon, inventory: PhoneInventory, cmap: ContextMap
             why = "it matches no context that can occur with this lexicon"
         diagnostics.warning(where, rule.line, f"rule for '{rule.centre}' is never used: "
                             f"{why}", "remove it or move it above the rule that wins")
-    return Coverage(cs, winner, len(missing), [r for r, w in zip(cmap.rules, won) if not w])
+    return Coverage(cs, winner, len(missing), [r for r, w in zip(cmap.rules, won) if not w],
+                    list(cmap.rules))
