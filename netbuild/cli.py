@@ -12,12 +12,23 @@ Commands (``netbuild COMMAND --help`` shows every option):
 - ``stats FILE``: size and properties of an FST file (or of a build directory's graph);
   ``--json`` prints ``{"file", "fst_type"}`` (the stored type) plus the keys of
   `netbuild.inspectors.stats.fst_stats` (``states``, ``arcs``, ...).
+- ``size GRAPH_OR_DIR [--budget SIZE]``: bytes on disk and in memory, const and vector
+  (per FST of a build directory); ``--json`` prints ``{"states", "arcs", "const":
+  {"disk_bytes", "memory_bytes"}, "vector": {...}, "symbols_bytes"}`` (plus
+  ``"stages"`` for a directory, ``"budget"`` with ``--budget``); exit 1 when over budget.
+  ``size --project F --predict`` predicts the final graph (`netbuild.predict`).
 - ``score --graph DIR [SENTENCE...]``: the language-model cost and the graph's best
   path cost of each sentence; ``--json`` prints a list of
   ``{"sentence", "lm_cost", "best_path_cost", "oov"}`` (infinite costs as null).
 - ``estimate --text F -o OUT.arpa``: estimates a back-off model from sentences
   (gzip-compressed when OUT ends in .gz); ``--json`` prints
   ``{"output", "order", "counts", "sentences", "vocabulary_size"}``.
+- ``prune --lm F --threshold T -o OUT.arpa``: relative-entropy pruning (back-off
+  weights recomputed); ``--json`` prints ``{"output", "threshold", "counts_before",
+  "counts_after", "protected", "heldout"}``.
+- ``fit --budget SIZE --out DIR``: prunes the model until the graph fits the budget
+  (within 5% under it) and writes the build, ``model.arpa`` and ``fit.json``;
+  ``--json`` prints `netbuild.fit.FitResult.to_json`.
 - ``ambiguity (--graph DIR | --project F)``: homophone and prefix groups, auxiliary
   markers and why, and per stage FST the input non-determinism, epsilon ratio and
   out-degrees; ``--json`` keys are listed in docs/diagnostics.md.
@@ -158,6 +169,9 @@ def _build_options(f):
         click.option("--checks/--no-checks", default=None, help="Per-stage checks."),
         click.option("--determinize-max-memory", callback=_size, metavar="SIZE",
                      help="Memory limit of determinization, e.g. 8GiB or 300MiB."),
+        click.option("--max-memory", callback=_size, metavar="SIZE",
+                     help="Stop before a stage estimated to need more memory than this "
+                     "(e.g. 16GiB); also caps --determinize-max-memory."),
         click.option("--determinize-timeout", type=click.FloatRange(0.0, min_open=True),
                      metavar="SECONDS", help="Time limit of determinization."),
         click.option("--final-optimize/--no-final-optimize", default=None,
@@ -290,6 +304,86 @@ def stats(file: Path, as_json: bool) -> None:
         click.echo(format_stats_table(result))
 
 
+# --- size -------------------------------------------------------------------------
+
+def _bytes_text(n: int) -> str:
+    for unit, scale in (("GiB", 2**30), ("MiB", 2**20), ("KiB", 2**10)):
+        if abs(n) >= scale:
+            return f"{n / scale:.1f} {unit}"
+    return f"{n} B"
+
+
+@cli.command()
+@click.argument("target", required=False, type=click.Path(exists=True, path_type=Path))
+@click.option("--project", "project_file", type=_EXISTING,
+              help="With --predict: the project whose final graph to predict.")
+@click.option("--predict", is_flag=True,
+              help="Predict the final graph's size from small sub-builds (needs --project).")
+@click.option("--budget", callback=_size, metavar="SIZE",
+              help="Say whether the graph, loaded in its stored layout, fits this memory "
+              "(e.g. 300MiB, 1.5GB); exit 1 when it does not.")
+@click.option("--json", "as_json", is_flag=True, help="Print the sizes as JSON.")
+def size(target: Path | None, project_file: Path | None, predict: bool,
+         budget: int | None, as_json: bool) -> None:
+    """Bytes on disk and in memory of a graph file or a build directory (const and
+    vector layouts), or, with --project F --predict, the predicted final graph."""
+    from .inspectors.size import build_sizes, check_budget, file_size
+
+    if predict:
+        if project_file is None or target is not None:
+            raise click.UsageError("--predict needs --project FILE and no GRAPH_OR_DIR")
+        from .predict import predict_graph_size
+
+        project = _project(project_file)
+        prediction = predict_graph_size(project)
+        data = prediction.to_json()
+        layout = project.options.fst_type
+        need = prediction.memory_high[layout]
+    else:
+        if target is None or project_file is not None:
+            raise click.UsageError("give one GRAPH_OR_DIR (or --project FILE --predict)")
+        data = build_sizes(target) if target.is_dir() else file_size(target).to_json()
+        layout = data.get("fst_type") if data.get("fst_type") in ("const", "vector") \
+            else "vector"
+        need = data[layout]["memory_bytes"]
+    verdict = None
+    if budget is not None:
+        fits, margin = check_budget(need, budget)
+        verdict = {"budget_bytes": budget, "fits": fits, "margin_bytes": margin,
+                   "layout": layout}
+    if as_json:
+        _echo_json({**data, **({"budget": verdict} if verdict else {})})
+    else:
+        if predict:
+            click.echo(f"predicted states {data['states']} "
+                       f"({data['states_interval'][0]} .. {data['states_interval'][1]}), "
+                       f"arcs {data['arcs']} ({data['arcs_interval'][0]} .. "
+                       f"{data['arcs_interval'][1]}) in {data['seconds']:.1f} s")
+            rows = [("final graph", data)]
+        else:
+            rows = [(s["name"], s) for s in data.get("stages", [])] or [(str(target), data)]
+        click.echo(f"{'fst':<18} {'states':>10} {'arcs':>11} {'const file':>11} "
+                   f"{'const mem':>11} {'vector file':>11} {'vector mem':>11}")
+        for name, d in rows:
+            click.echo(f"{name:<18} {d['states']:>10} {d['arcs']:>11} "
+                       f"{_bytes_text(d['const']['disk_bytes']):>11} "
+                       f"{_bytes_text(d['const']['memory_bytes']):>11} "
+                       f"{_bytes_text(d['vector']['disk_bytes']):>11} "
+                       f"{_bytes_text(d['vector']['memory_bytes']):>11}")
+        if verdict is not None:
+            what = "the predicted upper end" if predict else "the graph"
+            if verdict["fits"]:
+                click.echo(f"fits: {what} needs {_bytes_text(need)} loaded as {layout}, "
+                           f"{_bytes_text(verdict['margin_bytes'])} under the budget of "
+                           f"{_bytes_text(budget)}")
+            else:
+                click.echo(f"does not fit: {what} needs {_bytes_text(need)} loaded as "
+                           f"{layout}, {_bytes_text(-verdict['margin_bytes'])} over the "
+                           f"budget of {_bytes_text(budget)}")
+    if verdict is not None and not verdict["fits"]:
+        click.get_current_context().exit(EXIT_ERROR)
+
+
 # --- score ------------------------------------------------------------------------
 
 @cli.command()
@@ -372,6 +466,106 @@ def estimate(text_file: Path, order: int, output: Path, unk: bool, as_json: bool
     else:
         grams = ", ".join(f"{c} {k + 1}-grams" for k, c in enumerate(counts))
         click.echo(f"wrote {output}: {grams} from {len(sentences)} sentences")
+
+
+
+# --- prune ------------------------------------------------------------------------
+
+def _heldout(path: Path | None):
+    if path is None:
+        return None
+    from .lm.estimate import read_sentences
+
+    return read_sentences(path)
+
+
+@cli.command()
+@click.option("--lm", "lm_file", required=True, type=_EXISTING,
+              help="The ARPA model to prune.")
+@click.option("--threshold", required=True, type=click.FloatRange(0.0), metavar="T",
+              help="Remove n-grams whose relative-entropy change (nats) is below T.")
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="The pruned ARPA file to write (atomically).")
+@click.option("--heldout", "heldout_file", type=_EXISTING,
+              help="Sentences, one per line: print the perplexity before and after.")
+@click.option("--json", "as_json", is_flag=True, help="Print a summary as JSON.")
+def prune(lm_file: Path, threshold: float, output: Path, heldout_file: Path | None,
+          as_json: bool) -> None:
+    """Prunes a back-off model by relative entropy and writes it as ARPA."""
+    from .io.arpa import read_arpa
+    from .lm.perplexity import perplexity
+    from .lm.prune import prune_model, write_model_atomically
+
+    heldout = _heldout(heldout_file)
+    model = read_arpa(lm_file)
+    result = prune_model(model, threshold)
+    write_model_atomically(result.model, output)
+    summary: dict[str, Any] = {
+        "output": str(output), "threshold": threshold,
+        "counts_before": [int(c) for c in model.counts()],
+        "counts_after": [int(c) for c in result.model.counts()],
+        "protected": [int(c) for c in result.protected], "heldout": None}
+    if heldout is not None:
+        before, after = perplexity(model, heldout), perplexity(result.model, heldout)
+        summary["heldout"] = {"perplexity_before": before.perplexity,
+                              "perplexity_after": after.perplexity,
+                              "events": after.events, "oov": after.oov,
+                              "oov_policy": after.policy}
+    if as_json:
+        _echo_json(summary)
+        return
+    counts = ", ".join(f"{a} -> {b} {k + 1}-grams" for k, (a, b) in enumerate(
+        zip(summary["counts_before"], summary["counts_after"] + [0] * model.max_order)))
+    click.echo(f"wrote {output}: {counts}")
+    if heldout is not None:
+        h = summary["heldout"]
+        click.echo(f"held-out perplexity {h['perplexity_before']:.3f} -> "
+                   f"{h['perplexity_after']:.3f} ({h['events']} events, {h['oov']} unknown "
+                   f"words, {h['oov_policy']})")
+
+
+# --- fit --------------------------------------------------------------------------
+
+@cli.command()
+@_input_options
+@_reading_options
+@click.option("--budget", required=True, callback=_size, metavar="SIZE",
+              help="Memory the final graph may take, e.g. 2MiB or 1.5GB.")
+@click.option("--heldout", "heldout_file", type=_EXISTING,
+              help="Sentences, one per line: record each step's perplexity.")
+@click.option("--representation", type=click.Choice(["const", "vector"]), default="const",
+              show_default=True, help="The graph layout the budget counts (and written).")
+@click.option("--max-builds", type=click.IntRange(2), default=12, show_default=True,
+              help="Real builds the search may run.")
+@click.option("--out", "out_dir", required=True,
+              type=click.Path(file_okay=False, path_type=Path),
+              help="The output directory (replaced only when the fit is complete).")
+@click.option("--json", "as_json", is_flag=True, help="Print the fit table as JSON.")
+def fit(project_file, budget, heldout_file, representation, max_builds, out_dir, as_json,
+        **flags) -> None:
+    """Prunes the model so the graph fits --budget (within 5% under it) and builds it."""
+    from .fit import fit as run_fit
+    from .fit import format_fit_table
+
+    project = _project(project_file, **flags)
+    heldout = _heldout(heldout_file)
+
+    def progress(step) -> None:
+        th = "unigram" if math.isinf(step.threshold) else f"{step.threshold:.3e}"
+        click.echo(f"threshold {th}: {step.ngrams} n-grams, {step.actual_bytes} bytes",
+                   err=True)
+
+    result = run_fit(project, budget, out_dir, heldout=heldout,
+                     representation=representation, max_builds=max_builds,
+                     progress=progress)
+    if as_json:
+        _echo_json(result.to_json())
+        return
+    click.echo(format_fit_table(result))
+    if not result.within_tolerance:
+        click.echo("warning: no threshold gave a graph within 5% under the budget; kept "
+                   "the largest graph that fits", err=True)
+    click.echo(f"wrote {out_dir}")
 
 
 # --- ambiguity --------------------------------------------------------------------

@@ -37,6 +37,8 @@ Relative paths are taken relative to the directory holding the project file::
     checks = true                # per-stage checks (the command line's --fast turns them off)
     determinize_max_memory = "8GiB"  # a size string, or an integer number of bytes
     determinize_timeout = 1800   # seconds (integer or float, > 0)
+    max_memory = "16GiB"         # stop before a stage estimated to need more (size);
+                                 # also caps determinize_max_memory; absent: no limit
     final_optimize = true        # full graph: determinize and minimize H∘C∘L∘G
 
     [hmm]
@@ -142,6 +144,7 @@ _SCHEMA: dict[str, dict[str, tuple[str, tuple[str, ...]]]] = {
         "checks": ("bool", ()),
         "determinize_max_memory": ("size", ()),
         "determinize_timeout": ("seconds", ()),
+        "max_memory": ("size", ()),
         "final_optimize": ("bool", ()),
     },
     "hmm": {"transition_scale": ("scale", ())},
@@ -325,7 +328,7 @@ def _with_values(project: Project, values: dict[str, Any]) -> Project:
            "keep_stress": "keep_stress", "rescale": "rescale_probabilities",
            "silence_probability": "silence_probability"}
     build = {"push_weights", "fst_type", "checks", "determinize_max_memory",
-             "determinize_timeout", "final_optimize", "transition_scale"}
+             "determinize_timeout", "final_optimize", "transition_scale", "max_memory"}
     lex_opts = dataclasses.replace(
         o.lexicon, **{lex[k]: v for k, v in values.items() if k in lex})
     gram_opts = dataclasses.replace(

@@ -37,8 +37,11 @@ and the manifest gains ``"phone_symbols"``, ``"inputs"["context"]``, the extra s
 - ``"graph"``, ``"word_symbols"``, ``"input_symbols"``: the file names above;
 - ``"intermediates"``: ``{"grammar": ..., "lexicon": ..., "wordgraph": ...}`` file names;
 - ``"stages"``: a list of ``{"name", "states", "arcs", "seconds", "peak_rss_bytes",
-  "details"}``, in the order the stages ran (``peak_rss_bytes`` is the process's peak
-  resident memory so far, or the child's for guarded stages);
+  "details", "bytes"}``, in the order the stages ran (``peak_rss_bytes`` is the
+  stage's peak resident memory, the larger of the process's and, for guarded stages,
+  the determinization child's; ``"bytes"`` is ``{"const", "vector"}`` ->
+  ``{"disk_bytes", "memory_bytes"}`` of the stage's FST, see
+  `netbuild.inspectors.size`);
 - ``"inputs"``: ``{"lexicon", "lm", "phones"}`` -> ``{"path", "sha256"}`` (phones is
   null when the project names no inventory);
 - ``"auxiliary_markers"``: the auxiliary symbols of the input table, in table order;
@@ -90,6 +93,8 @@ from .builders.contexts import Coverage, check_coverage
 from .builders.context import window_models
 from .full_pipeline import FullGraph, build_full_graph
 from .pipeline import StageRecord, WordGraph, build_word_graph
+from .inspectors.size import fst_size
+from .predict import MemoryGuard, full_stage_order, stage_order
 from .project import Project, require_inputs
 from .symbols import SENTENCE_END, SENTENCE_START, UNKNOWN, is_auxiliary
 
@@ -401,10 +406,38 @@ def plain_json(value: Any) -> Any:
     return str(value)
 
 
-def _stage_json(record: StageRecord) -> dict[str, Any]:
-    return {"name": record.name, "states": int(record.states), "arcs": int(record.arcs),
-            "seconds": float(record.seconds), "peak_rss_bytes": int(record.peak_rss_bytes),
-            "details": plain_json(getattr(record, "details", None) or {})}
+def _stage_json(record: StageRecord, fst: pynini.Fst | None = None) -> dict[str, Any]:
+    entry = {"name": record.name, "states": int(record.states), "arcs": int(record.arcs),
+             "seconds": float(record.seconds), "peak_rss_bytes": int(record.peak_rss_bytes),
+             "details": plain_json(getattr(record, "details", None) or {})}
+    if fst is not None:
+        report = fst_size(fst)
+        entry["bytes"] = {"const": dataclasses.asdict(report.const),
+                          "vector": dataclasses.asdict(report.vector)}
+    return entry
+
+
+# The intermediate FST each stage record describes (word graph, then full graph).
+_STAGE_FSTS = {"grammar": "grammar", "lexicon": "lexicon", "compose": "composed",
+               "determinize": "determinized", "minimize": "minimized", "push": "pushed"}
+_FULL_STAGE_FSTS = {"context": "context", "hmm": "hmm", "compose-context": "clg",
+                    "compose-hmm": "hclg_raw", "determinize-hmm": "determinized_full",
+                    "remove-markers": "unmarked", "minimize-hmm": "minimized_full",
+                    "self-loops": "graph"}
+
+
+def _stage_fsts(graph: WordGraph, full: FullGraph | None,
+                stages: list[StageRecord]) -> list[pynini.Fst | None]:
+    """The FST of each stage record, where the build kept it."""
+    word = len(graph.stages)
+    out: list[pynini.Fst | None] = []
+    for i, record in enumerate(stages):
+        if i < word:
+            out.append(graph.intermediates.get(_STAGE_FSTS.get(record.name, "")))
+        else:
+            assert full is not None
+            out.append(full.intermediates.get(_FULL_STAGE_FSTS.get(record.name, "")))
+    return out
 
 
 def _write_symbols(table: pynini.SymbolTable, path: Path) -> None:
@@ -429,7 +462,8 @@ def build(project: Project, out_dir: str | os.PathLike,
 
     Raises:
       InputError: problems in the inputs (every problem of every input).
-      StageError: a stage failed or hit a resource limit.
+      StageError: a stage failed or hit a resource limit; with ``options.max_memory``
+        also before a stage whose estimated need exceeds it (`netbuild.predict.MemoryGuard`).
       CheckFailed: a stage check failed (a netbuild bug).
       KeyboardInterrupt: interrupted (or SIGTERM); the previous `out_dir` is untouched.
     """
@@ -440,6 +474,14 @@ def build(project: Project, out_dir: str | os.PathLike,
         diag.raise_if_errors()
         assert inputs is not None  # no errors means every input was read
         opts = project.options
+        guard = None
+        if opts.max_memory is not None:
+            # The determinization child may never have more than the whole build.
+            opts = dataclasses.replace(opts, determinize_max_memory=min(
+                opts.determinize_max_memory, opts.max_memory))
+            order = stage_order(opts) + (full_stage_order(opts)
+                                         if inputs.cmap is not None else [])
+            guard = MemoryGuard(opts.max_memory, order)
         model, vocabulary = restrict_vocabulary(inputs.model, set(inputs.lexicon.words()),
                                                 opts.grammar.oov_policy)
         started = time.perf_counter()
@@ -458,13 +500,21 @@ def build(project: Project, out_dir: str | os.PathLike,
                 record.seconds += seconds
             if progress is not None:
                 progress(record)
+            if guard is not None:
+                guard(record)
+
+        def on_full_stage(record: StageRecord) -> None:
+            if progress is not None:
+                progress(record)
+            if guard is not None:
+                guard(record)
 
         graph = build_word_graph(lexicon, grammar, opts, on_stage)
         input_symbols = lexicon.phone_symbols
         full = None
         if inputs.cmap is not None:
             full = build_full_graph(graph, lexicon, inputs.cmap, context_windows(inputs),
-                                    opts, progress)
+                                    opts, on_full_stage)
         stages = list(graph.stages) + (list(full.stages) if full is not None else [])
         manifest: dict[str, Any] = {
             "format": MANIFEST_FORMAT,
@@ -474,7 +524,8 @@ def build(project: Project, out_dir: str | os.PathLike,
             "input_symbols": INPUT_SYMBOLS_FILE,
             "intermediates": {"grammar": GRAMMAR_FILE, "lexicon": LEXICON_FILE,
                               "wordgraph": GRAPH_FILE},
-            "stages": [_stage_json(s) for s in stages],
+            "stages": [_stage_json(s, f) for s, f in zip(stages, _stage_fsts(graph, full,
+                                                                             stages))],
             "inputs": {"lexicon": _input_record(project.lexicon),
                        "lm": _input_record(project.lm),
                        "phones": _input_record(project.phones)},

@@ -153,8 +153,6 @@ def test_bad_context_map_in_a_real_process(tmp_path):
     _assert_located(proc.stdout + proc.stderr, cmap, n, [])
 
 
-@pytest.mark.xfail(strict=True, reason="the coverage error names one word ('no') for a "
-                   "context that occurs only across two words; it should name the pair")
 def test_uncovered_cross_word_context_names_the_word_pair(runner, tmp_path):
     """'n o n' occurs only across words ("no" or "know" before "no", "know" or "note"),
     so the error names a pair of words, not a single one."""

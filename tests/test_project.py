@@ -220,7 +220,7 @@ def test_every_setting_has_an_override(inputs: Path):
               "rescale": False, "silence_probability": 0.1, "oov_policy": "fail",
               "push_weights": False, "fst_type": "const", "checks": False,
               "determinize_max_memory": 1000, "determinize_timeout": 5.0,
-              "final_optimize": False, "transition_scale": 0.5}
+              "final_optimize": False, "transition_scale": 0.5, "max_memory": 2000}
     assert set(values) | {"lexicon", "lm", "phones", "context"} == set(SETTINGS)
     out = apply_overrides(None, **values)
     o = out.options
@@ -231,6 +231,7 @@ def test_every_setting_has_an_override(inputs: Path):
     assert (o.push_weights, o.fst_type, o.checks, o.determinize_max_memory,
             o.determinize_timeout) == (False, "const", False, 1000, 5.0)
     assert (o.final_optimize, o.transition_scale) == (False, 0.5)
+    assert o.max_memory == 2000
 
 
 def test_override_errors_are_collected(tmp_path: Path):

@@ -94,12 +94,16 @@ class SizeReport:
     vector: Footprint
     symbols_bytes: int
     arc_type: str = "standard"
+    fst_type: str | None = None  # the stored type, for a report of a file
 
     def to_json(self) -> dict[str, Any]:
-        return {"states": self.states, "arcs": self.arcs,
+        data = {"states": self.states, "arcs": self.arcs,
                 "const": dataclasses.asdict(self.const),
                 "vector": dataclasses.asdict(self.vector),
                 "symbols_bytes": self.symbols_bytes}
+        if self.fst_type is not None:
+            data["fst_type"] = self.fst_type
+        return data
 
 
 def header_bytes(fst_type: str, arc_type: str = "standard") -> int:
@@ -242,8 +246,10 @@ def file_size(path: str | os.PathLike) -> SizeReport:
                          "give a file written by 'netbuild build' or by OpenFst",
                          path=str(p)) from err
     if header[0] == "const":
-        return _report(header[1], header[2], _const_counts(p, header[1], header[2]), fst)
-    return fst_size(fst)
+        report = _report(header[1], header[2], _const_counts(p, header[1], header[2]), fst)
+    else:
+        report = fst_size(fst)
+    return dataclasses.replace(report, fst_type=header[0])
 
 
 def _manifest_fsts(directory: Path) -> tuple[dict[str, Any], list[tuple[str, Path]]]:

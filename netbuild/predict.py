@@ -1,0 +1,357 @@
+"""Predicting the size of the final graph before building it.
+
+- `Prediction`: predicted states, arcs and bytes with low/high intervals, and the cost.
+- `Sample`: one measured sub-build (fraction, G arcs, final states/arcs).
+- `subsample_model(model, fraction, seed=0)`: a prefix-closed share of the n-grams.
+- `predict_graph_size(project, fractions=None, seed=0)`: the prediction.
+
+Method (docs/size.md has the measurements). The final graph grows with G, and G is
+cheap to build in full. So the whole build (L∘G to the final graph, checks off) is run
+on a few sub-models holding every unigram and a share f of the higher-order n-grams;
+each gives one point (x = arcs of its G, y = states or arcs of its final graph). The
+sub-model with f = 0 (unigrams only) gives the intercept (x0, y0), and the growth above
+it is fitted as a power law, y - y0 = b (x - x0)^p, by least squares in log-log
+coordinates over the sampled fractions. The point estimate is the fit at the full G's
+x; the interval spans the extrapolations of every pair of sampled points (the local
+slopes) widened by the largest relative residual of the fit and a fixed 5%.
+
+The sub-models are prefix-closed so that no history is lost: an n-gram (n >= 2) is
+kept when a hash of its first two word ids falls below f, so every kept n-gram's
+history (same first two words) is kept too, and each order keeps about the share f.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import time
+from typing import Sequence
+
+import numpy as np
+
+from .builders.grammar import build_grammar
+from .builders.lexicon import build_lexicon
+from .builders.vocabulary import restrict_vocabulary
+from .errors import Diagnostics, StageError
+from .inspectors.size import footprints
+from .io.arpa import ArpaModel, NgramTable
+from .pipeline import build_word_graph
+from .project import Project
+
+__all__ = ["Prediction", "Sample", "predict_graph_size", "subsample_model"]
+
+_MIN_SAMPLED_NGRAMS = 1500  # higher-order n-grams in the smallest sub-model
+_MIN_FRACTION, _MAX_FRACTION = 0.02, 0.15
+_WIDEN = 0.05
+
+
+@dataclasses.dataclass(frozen=True)
+class Sample:
+    """One sub-build: the share of n-grams kept, its G's arcs and its final graph."""
+
+    fraction: float
+    grammar_arcs: int
+    states: int
+    arcs: int
+    states_with_arcs: int
+    seconds: float
+
+
+@dataclasses.dataclass(frozen=True)
+class Prediction:
+    """Predicted size of the final graph.
+
+    `states`, `arcs` are point estimates with `states_low/high`, `arcs_low/high`;
+    `memory_bytes` and `disk_bytes` map "const"/"vector" to the point estimate, and
+    `memory_low`/`memory_high` to the interval ends. `seconds` is the prediction's cost.
+    """
+
+    states: int
+    arcs: int
+    states_low: int
+    states_high: int
+    arcs_low: int
+    arcs_high: int
+    memory_bytes: dict[str, int]
+    memory_low: dict[str, int]
+    memory_high: dict[str, int]
+    disk_bytes: dict[str, int]
+    grammar_arcs: int
+    samples: tuple[Sample, ...]
+    seconds: float
+
+    def to_json(self) -> dict:
+        return {"states": self.states, "arcs": self.arcs,
+                "states_interval": [self.states_low, self.states_high],
+                "arcs_interval": [self.arcs_low, self.arcs_high],
+                "const": {"memory_bytes": self.memory_bytes["const"],
+                          "memory_interval": [self.memory_low["const"],
+                                              self.memory_high["const"]],
+                          "disk_bytes": self.disk_bytes["const"]},
+                "vector": {"memory_bytes": self.memory_bytes["vector"],
+                           "memory_interval": [self.memory_low["vector"],
+                                               self.memory_high["vector"]],
+                           "disk_bytes": self.disk_bytes["vector"]},
+                "grammar_arcs": self.grammar_arcs,
+                "samples": [dataclasses.asdict(s) for s in self.samples],
+                "seconds": self.seconds}
+
+
+def _keep_mask(words: np.ndarray, fraction: float, seed: int) -> np.ndarray:
+    """True for rows whose first two word ids hash below `fraction` (splitmix64)."""
+    x = (words[:, 0].astype(np.uint64) << np.uint64(32)) | words[:, 1].astype(np.uint64)
+    x = x + np.uint64((0x9E3779B97F4A7C15 * (seed + 1)) % 2**64)
+    with np.errstate(over="ignore"):
+        x = (x ^ (x >> np.uint64(30))) * np.uint64(0xBF58476D1CE4E5B9)
+        x = (x ^ (x >> np.uint64(27))) * np.uint64(0x94D049BB133111EB)
+        x = x ^ (x >> np.uint64(31))
+    return (x >> np.uint64(11)).astype(np.float64) / 2.0**53 < fraction
+
+
+def subsample_model(model: ArpaModel, fraction: float, seed: int = 0) -> ArpaModel:
+    """Constructively keeps every unigram and about `fraction` of the other n-grams.
+
+    The choice is prefix-closed (see the module docstring) and deterministic for a seed.
+    """
+    orders = [model.orders[0]]
+    for table in model.orders[1:]:
+        keep = _keep_mask(table.words, fraction, seed)
+        orders.append(NgramTable(table.order, table.words[keep], table.logprob[keep],
+                                 table.backoff[keep], table.lines[keep]))
+    return ArpaModel(list(model.vocab), orders, model.path)
+
+
+def _fractions(higher: int) -> tuple[float, ...]:
+    f = min(_MAX_FRACTION, max(_MIN_FRACTION, _MIN_SAMPLED_NGRAMS / max(higher, 1)))
+    return (f, 2 * f, 4 * f)
+
+
+def _fit(xs: np.ndarray, ys: np.ndarray) -> tuple[float, float]:
+    """Least-squares (log b, p) of log y = log b + p log x."""
+    lx, ly = np.log(xs), np.log(ys)
+    p, logb = np.polyfit(lx, ly, 1)
+    return float(logb), float(p)
+
+
+def _extrapolate(x0: float, y0: float, xs: list[float], ys: list[float],
+                 x_full: float) -> tuple[float, float, float]:
+    """Returns (point, low, high) of y at `x_full` from the samples above (x0, y0)."""
+    dx = np.array(xs) - x0
+    dy = np.array(ys) - y0
+    usable = (dx > 0) & (dy > 0)
+    if x_full <= x0 or usable.sum() == 0:
+        return y0, y0, y0
+    dx, dy = dx[usable], dy[usable]
+    target = math.log(x_full - x0)
+    if len(dx) == 1:
+        point = y0 + dy[0] * (x_full - x0) / dx[0]  # linear growth: the only choice
+        return point, point * (1 - 2 * _WIDEN), point * (1 + 2 * _WIDEN)
+    logb, p = _fit(dx, dy)
+    point = y0 + math.exp(logb + p * target)
+    residual = float(np.max(np.abs(np.exp(logb + p * np.log(dx)) / dy - 1.0)))
+    ends = [point]
+    for i in range(len(dx)):
+        for j in range(i + 1, len(dx)):
+            if dx[j] == dx[i]:
+                continue
+            pij = math.log(dy[j] / dy[i]) / math.log(dx[j] / dx[i])
+            ends.append(y0 + dy[j] * math.exp(pij * (target - math.log(dx[j]))))
+    widen = _WIDEN + residual
+    return point, min(ends) * (1 - widen), max(ends) * (1 + widen)
+
+
+def _final_graph(inputs, model: ArpaModel, opts):
+    """Builds the final graph of `model` (checks off) and returns (G arcs, final fst)."""
+    from .full_pipeline import build_full_graph
+    from .pipeline import num_arcs
+    from .workflow import context_windows
+
+    grammar = build_grammar(model)
+    lexicon = build_lexicon(inputs.lexicon, inputs.inventory, grammar.word_symbols,
+                            opts.lexicon)
+    graph = build_word_graph(lexicon, grammar, opts)
+    fst = graph.fst
+    if inputs.cmap is not None:
+        fst = build_full_graph(graph, lexicon, inputs.cmap, context_windows(inputs),
+                               opts).fst
+    return num_arcs(grammar.fst), fst
+
+
+def _measure(fst) -> tuple[int, int, int]:
+    states = arcs = with_arcs = 0
+    for s in fst.states():
+        n = fst.num_arcs(s)
+        states += 1
+        arcs += n
+        with_arcs += n > 0
+    return states, arcs, with_arcs
+
+
+def predict_graph_size(project: Project, fractions: Sequence[float] | None = None,
+                       seed: int = 0) -> Prediction:
+    """Predicts the final graph's states, arcs and bytes of `project` from sub-builds.
+
+    Reads the inputs (all problems raised at once), builds the full G (cheap), and
+    builds the whole graph, checks off, for the unigram-only model and for sub-models
+    holding the share `fractions` of the higher-order n-grams (default: three shares
+    f, 2f, 4f with f = 1500 / higher-order n-grams, clipped to 0.02 .. 0.15).
+
+    Raises:
+      InputError: problems in the inputs.
+      StageError: a sub-build failed (the full build would fail the same way).
+    """
+    from .workflow import read_inputs
+
+    started = time.perf_counter()
+    diag = Diagnostics()
+    inputs = read_inputs(project, diag)
+    diag.raise_if_errors()
+    assert inputs is not None
+    opts = dataclasses.replace(project.options, checks=False)
+    model, _ = restrict_vocabulary(inputs.model, set(inputs.lexicon.words()),
+                                   opts.grammar.oov_policy)
+    from .pipeline import num_arcs
+
+    x_full = num_arcs(build_grammar(model).fst)
+    higher = sum(len(t) for t in model.orders[1:])
+    shares = tuple(fractions) if fractions is not None else _fractions(higher)
+    if any(not 0.0 < f < 1.0 for f in shares):
+        raise StageError("predict", f"fractions {shares} must lie strictly between 0 and 1",
+                         "pass shares such as 0.05, 0.1, 0.2")
+    samples: list[Sample] = []
+    for f in (0.0, *shares):
+        t0 = time.perf_counter()
+        sub = subsample_model(model, f, seed) if f > 0 else ArpaModel(
+            list(model.vocab), [model.orders[0]], model.path)
+        gx, fst = _final_graph(inputs, sub, opts)
+        s, a, s1 = _measure(fst)
+        samples.append(Sample(f, gx, s, a, s1, time.perf_counter() - t0))
+        del fst
+    base, rest = samples[0], samples[1:]
+    xs = [float(s.grammar_arcs) for s in rest]
+    st, st_lo, st_hi = _extrapolate(base.grammar_arcs, base.states, xs,
+                                    [float(s.states) for s in rest], x_full)
+    ar, ar_lo, ar_hi = _extrapolate(base.grammar_arcs, base.arcs, xs,
+                                    [float(s.arcs) for s in rest], x_full)
+    share = rest[-1].states_with_arcs / max(rest[-1].states, 1)
+
+    def bytes_of(states: float, arcs: float) -> tuple[dict[str, int], dict[str, int]]:
+        const, vector = footprints(int(states), int(arcs), int(states * share))
+        return ({"const": const.memory_bytes, "vector": vector.memory_bytes},
+                {"const": const.disk_bytes, "vector": vector.disk_bytes})
+
+    memory, disk = bytes_of(st, ar)
+    low, _ = bytes_of(st_lo, ar_lo)
+    high, _ = bytes_of(st_hi, ar_hi)
+    return Prediction(int(round(st)), int(round(ar)), int(st_lo), int(math.ceil(st_hi)),
+                      int(ar_lo), int(math.ceil(ar_hi)), memory, low, high, disk,
+                      int(x_full), tuple(samples), time.perf_counter() - started)
+
+
+# --- the build-memory guard --------------------------------------------------------
+
+# Output size of each stage relative to its input FST (states and arcs alike), and the
+# number of vector-sized copies alive at the stage's peak (input, output, sorted or
+# encoded copies). Ratios are upper ends of what the ropeway demo and the synthetic
+# benchmark sets gave (docs/size.md); the stage starts only when the current resident
+# memory plus `copies * ratio * input` fits the limit.
+STAGE_GROWTH: dict[str, tuple[float, float]] = {
+    "compose": (4.0, 2.0),  # input: G and L together
+    "determinize": (1.5, 3.0),  # child: input + output; the parent reads it back
+    "minimize": (1.0, 3.0),  # encoded copy, minimized, decoded
+    "push": (1.0, 3.0),
+    "compose-context": (3.0, 2.0),
+    "compose-hmm": (3.0, 2.0),
+    "determinize-hmm": (1.5, 3.0),
+    "remove-markers": (1.0, 2.0),
+    "minimize-hmm": (1.0, 3.0),
+    "self-loops": (2.0, 2.0),
+}
+_INPUT_BUILDS = ("grammar", "lexicon", "context", "hmm")  # cheap; not guarded
+
+
+def current_rss() -> int:
+    """This process's resident memory now, in bytes (Linux /proc; 0 elsewhere)."""
+    try:
+        with open("/proc/self/statm", encoding="ascii") as fh:
+            return int(fh.read().split()[1]) * 4096
+    except (OSError, ValueError, IndexError):
+        return 0
+
+
+def stage_need(stage: str, input_states: int, input_arcs: int, resident: int) -> int:
+    """Returns the estimated peak resident bytes of `stage` on an input of this size."""
+    ratio, copies = STAGE_GROWTH[stage]
+    _, vector = footprints(int(input_states * ratio), int(input_arcs * ratio),
+                           int(input_states * ratio))
+    return int(resident + copies * vector.memory_bytes)
+
+
+def stage_order(opts) -> list[str]:
+    """Returns the names of the stage records a build with `opts` emits, in order."""
+    order = ["grammar", "lexicon", "compose", "determinize", "minimize"]
+    if opts.push_weights:
+        order.append("push")
+    return order
+
+
+def full_stage_order(opts) -> list[str]:
+    """Returns the names of the full-graph stage records, in order (after the word graph)."""
+    order = ["context", "hmm", "compose-context", "compose-hmm"]
+    if opts.final_optimize:
+        order.append("determinize-hmm")
+    order.append("remove-markers")
+    if opts.final_optimize:
+        order.append("minimize-hmm")
+    order.append("self-loops")
+    return order
+
+
+class MemoryGuard:
+    """Stops a build before a stage whose estimated need exceeds `limit` bytes.
+
+    Call it with each finished stage's record (it is a progress callback): it finds the
+    stage that runs next, estimates its need from its input's size (the previous
+    stage's output; for L∘G, G and L together) and the resident memory now, and raises
+    `StageError` instead of letting that stage start. `checked` keeps every estimate.
+    """
+
+    def __init__(self, limit: int, order: Sequence[str]) -> None:
+        self.limit = int(limit)
+        self.order = list(order)
+        self.sizes: dict[str, tuple[int, int]] = {}
+        self.last: tuple[int, int] | None = None  # output of the last guarded stage
+        self.checked: list[tuple[str, int]] = []
+
+    def __call__(self, record) -> None:
+        name = record.name
+        self.sizes[name] = (int(record.states), int(record.arcs))
+        if name not in _INPUT_BUILDS:
+            self.last = self.sizes[name]
+        if name not in self.order:
+            return
+        following = self.order[self.order.index(name) + 1:]
+        stage = next((s for s in following if s not in _INPUT_BUILDS), None)
+        if stage is None or any(s in _INPUT_BUILDS and s not in self.sizes
+                                for s in following[:following.index(stage)]):
+            return  # the next stage's inputs are not all built yet
+        if stage == "compose":
+            g, lx = self.sizes.get("grammar"), self.sizes.get("lexicon")
+            if g is None or lx is None:
+                return
+            size = (g[0] + lx[0], g[1] + lx[1])
+        elif self.last is None:
+            return
+        else:
+            size = self.last
+        need = stage_need(stage, size[0], size[1], current_rss())
+        self.checked.append((stage, need))
+        if need > self.limit:
+            mib = 2**20
+            raise StageError(
+                stage, f"estimated to need {need / mib:.0f} MiB (its input has "
+                f"{size[0]} states and {size[1]} arcs) but the memory limit is "
+                f"{self.limit / mib:.0f} MiB; stopped before starting it",
+                "raise --max-memory (max_memory in [build]), run 'netbuild size "
+                "--project F --predict' to see the expected size, or shrink the model "
+                "(prune it or lower its order)")
