@@ -15,6 +15,13 @@ Measurements (``--only`` picks some; each runs ``--repeat`` times, one after ano
   (the default) and off (``checks=False``).
 - ``workflow``: `netbuild.workflow.build` from a project file (reads, builds, writes the
   output directory).
+- ``fullgraph``: `netbuild.workflow.build` of a full-graph project (the synthetic
+  triphone map of bench/synth_context.py) on the 5k / 200k and 20k / 1M sets: every
+  `StageRecord`, the final graph's size in states, arcs and bytes (vector and const
+  files), and the ratio of final arcs to G arcs. On 20k / 1M also with checks off and
+  with ``final_optimize = false``.
+- ``baseline_full``: the straightforward construction of bench/baseline_full.py
+  (plain pynini calls, a Python self-loop loop) on the same inputs.
 
 Memory. Each child reports its VmHWM (Linux /proc/self/status). Before the timed work
 it resets the high-water mark (writing 5 to /proc/self/clear_refs) so the reported peak
@@ -60,6 +67,7 @@ DATASETS = {
     # name: (synth.py arguments, has lexicon)
     "w20k_n1m": (["--words", "20000", "--ngrams", "1000000"], True),
     "w20k_n5m": (["--words", "20000", "--ngrams", "5000000", "--no-lexicon"], False),
+    "w5k_n200k": (["--words", "5000", "--ngrams", "200000"], True),
 }
 
 TARGETS = {
@@ -199,8 +207,56 @@ def _child_workflow(params: dict) -> dict:
             "stages": [dataclasses.asdict(r) for r in records]}
 
 
+def _child_fullgraph(params: dict) -> dict:
+    """`workflow.build` of a full-graph project; sizes of graph.fst as vector and const."""
+    import dataclasses
+
+    import pywrapfst
+
+    from netbuild.project import read_project
+    from netbuild.workflow import build
+
+    project = read_project(params["project"])
+    mem = _start()
+    records = []
+
+    def progress(record) -> None:
+        records.append(record)
+        print(f"  {record}", file=sys.stderr, flush=True)
+
+    t0 = time.perf_counter()
+    with tempfile.TemporaryDirectory(dir=OUT) as tmp:
+        result = build(project, Path(tmp) / "graph", progress=progress)
+        t1 = time.perf_counter()
+        peak = _status("VmHWM")
+        graph_file = Path(tmp) / "graph" / result.manifest["graph"]
+        written = graph_file.stat().st_size
+        fst = pywrapfst.Fst.read(str(graph_file))
+        other = "const" if fst.fst_type() == "vector" else "vector"
+        pywrapfst.convert(fst, other).write(str(Path(tmp) / "other.fst"))
+        sizes = {fst.fst_type(): written, other: (Path(tmp) / "other.fst").stat().st_size}
+    stages = [dataclasses.asdict(r) for r in records]
+    g_arcs = next(s["arcs"] for s in stages if s["name"] == "grammar")
+    final = stages[-1]
+    return {**mem, "seconds": t1 - t0, "peak_rss": peak, "stages": stages,
+            "final_states": final["states"], "final_arcs": final["arcs"],
+            "g_arcs": g_arcs, "final_to_g_arcs": final["arcs"] / g_arcs,
+            "graph_bytes": sizes,
+            "child_peak_rss": max([int(s["details"].get("child_peak_rss_bytes", 0))
+                                   for s in stages] + [0])}
+
+
+def _child_baseline_full(params: dict) -> dict:
+    sys.path.insert(0, str(HERE))
+    from baseline_full import straightforward_graph
+
+    mem = _start()
+    return {**mem, **straightforward_graph(params["data"])}
+
+
 CHILDREN = {"baseline": _child_baseline, "arpa_g": _child_arpa_g,
-            "wordgraph": _child_wordgraph, "workflow": _child_workflow}
+            "wordgraph": _child_wordgraph, "workflow": _child_workflow,
+            "fullgraph": _child_fullgraph, "baseline_full": _child_baseline_full}
 
 
 # ---------------------------------------------------------------------------- parent side
@@ -246,6 +302,25 @@ def ensure_data(name: str, regenerate: bool) -> Path:
         subprocess.run([sys.executable, str(HERE / "synth.py"), *args, "--out", str(out)],
                        check=True, stdout=subprocess.DEVNULL)
     return out
+
+
+def write_full_project(data: Path, final_optimize: bool = True, checks: bool = True) -> Path:
+    """Writes the synthetic context map (bench/synth_context.py) and a full-graph project
+    file for dataset directory `data`; returns the project's path."""
+    sys.path.insert(0, str(HERE))
+    from synth import write_phones
+    from synth_context import write_context_map_text
+
+    write_phones(data / "phones.txt")  # the tying rules need its group classes
+    write_context_map_text(data / "context.txt")
+    name = f"project_full{'' if final_optimize else '_noopt'}{'' if checks else '_fast'}"
+    path = data / f"{name}.toml"
+    path.write_text('[inputs]\nlexicon = "lexicon.txt"\nlm = "model.arpa"\n'
+                    'phones = "phones.txt"\ncontext = "context.txt"\n\n'
+                    '[lexicon]\nprobabilities = true\n\n[build]\n'
+                    f'final_optimize = {str(final_optimize).lower()}\n'
+                    f'checks = {str(checks).lower()}\n', encoding="utf-8")
+    return path
 
 
 def write_project(data: Path) -> Path:
@@ -315,6 +390,23 @@ def summarize(results: dict) -> dict:
             "peak_rss_median": _median([r["peak_rss"] for r in runs]),
             "steps": best["prep_steps"] + best["stages"],
             "final_states": best["final_states"], "final_arcs": best["final_arcs"]}
+    for label, runs in results.get("fullgraph", {}).items():
+        best = min(runs, key=lambda r: r["seconds"])
+        summary.setdefault("fullgraph", {})[label] = {
+            "runs": len(runs), "seconds_median": _median([r["seconds"] for r in runs]),
+            "seconds_min": best["seconds"],
+            "peak_rss_median": _median([r["peak_rss"] for r in runs]),
+            "child_peak_rss": best["child_peak_rss"], "stages": best["stages"],
+            "final_states": best["final_states"], "final_arcs": best["final_arcs"],
+            "g_arcs": best["g_arcs"], "final_to_g_arcs": best["final_to_g_arcs"],
+            "graph_bytes": best["graph_bytes"],
+            "load": [best["load_before"][0], best["load_after"][0]]}
+    for label, runs in results.get("baseline_full", {}).items():
+        r = runs[0]
+        summary.setdefault("baseline_full", {})[label] = {
+            k: r[k] for k in ("seconds", "peak_rss", "steps", "final_states", "final_arcs",
+                              "vector_bytes", "g_arcs")}
+        summary["baseline_full"][label]["load"] = [r["load_before"][0], r["load_after"][0]]
     for label, runs in results.get("workflow", {}).items():
         summary.setdefault("workflow", {})[label] = {
             "runs": len(runs), "seconds_median": _median([r["seconds"] for r in runs]),
@@ -357,6 +449,34 @@ def markdown(summary: dict) -> str:
             out.append(f"| {r['name']} | {r['seconds']:.2f} | {_mb(r['peak_rss_bytes'])} "
                        f"| {states} | {arcs} |")
         out.append("")
+    for label, s in summary.get("fullgraph", {}).items():
+        sizes = ", ".join(f"{k} {v:,} bytes" for k, v in s["graph_bytes"].items())
+        out += [f"Full graph, {label}: end to end {s['seconds_median']:.2f} s median "
+                f"({s['seconds_min']:.2f} s best of {s['runs']}), peak RSS "
+                f"{_mb(s['peak_rss_median'])} (guard child {_mb(s['child_peak_rss'])}); "
+                f"final {s['final_states']:,} states / {s['final_arcs']:,} arcs, "
+                f"{s['final_to_g_arcs']:.2f} x G's {s['g_arcs']:,} arcs; graph.fst {sizes}; "
+                f"load {s['load'][0]:.1f} -> {s['load'][1]:.1f}.", "",
+                "| stage | seconds | check s | peak RSS | states | arcs |",
+                "|---|---:|---:|---:|---:|---:|"]
+        for r in s["stages"]:
+            chk_s = r["details"].get("check_seconds")
+            out.append(f"| {r['name']} | {r['seconds']:.2f} | "
+                       f"{'' if chk_s is None else f'{chk_s:.2f}'} | "
+                       f"{_mb(r['peak_rss_bytes'])} | {r['states']:,} | {r['arcs']:,} |")
+        out.append("")
+    for label, s in summary.get("baseline_full", {}).items():
+        out += [f"Straightforward construction, {label}: {s['seconds']:.2f} s (sum of "
+                f"steps), peak RSS {_mb(s['peak_rss'])}; final {s['final_states']:,} "
+                f"states / {s['final_arcs']:,} arcs, vector file {s['vector_bytes']:,} "
+                f"bytes; load {s['load'][0]:.1f} -> {s['load'][1]:.1f}.", "",
+                "| step | seconds | peak RSS | states | arcs |", "|---|---:|---:|---:|---:|"]
+        for r in s["steps"]:
+            states = f"{r['states']:,}" if "states" in r else ""
+            arcs = f"{r['arcs']:,}" if "arcs" in r else ""
+            out.append(f"| {r['name']} | {r['seconds']:.2f} | {_mb(r['peak_rss_bytes'])} "
+                       f"| {states} | {arcs} |")
+        out.append("")
     for label, s in summary.get("workflow", {}).items():
         out.append(f"workflow.build, {label}: {s['seconds_median']:.2f} s median over "
                    f"{s['runs']} runs, peak RSS {_mb(s['peak_rss_median'])}.")
@@ -365,8 +485,13 @@ def markdown(summary: dict) -> str:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="netbuild benchmarks (see module docstring)")
-    ap.add_argument("--only", nargs="*", default=["baseline", "arpa_g", "wordgraph", "workflow"],
-                    choices=["baseline", "arpa_g", "wordgraph", "workflow"])
+    kinds = ["baseline", "arpa_g", "wordgraph", "workflow", "fullgraph", "baseline_full"]
+    ap.add_argument("--only", nargs="*", default=kinds, choices=kinds)
+    ap.add_argument("--full-datasets", nargs="*", default=["w5k_n200k", "w20k_n1m"],
+                    choices=["w5k_n200k", "w20k_n1m"], help="data sets of fullgraph")
+    ap.add_argument("--all-variants", action="store_true",
+                    help="fullgraph: also checks off / final_optimize off on every set "
+                         "(by default only on w20k_n1m)")
     ap.add_argument("--datasets", nargs="*", default=list(DATASETS), choices=list(DATASETS),
                     help="models for arpa_g")
     ap.add_argument("--repeat", type=int, default=3)
@@ -418,6 +543,33 @@ def main(argv: list[str] | None = None) -> int:
                 runs.append(r)
             results.setdefault("wordgraph", {})[label] = runs
             _save(results, args.results)
+    if "fullgraph" in args.only or "baseline_full" in args.only:
+        for name in args.full_datasets:
+            fdata = ensure_data(name, args.regenerate)
+            variants = [(True, True), (True, False), (False, True)] \
+                if "fullgraph" in args.only else []
+            for final_optimize, checks in variants:
+                if not args.all_variants and (final_optimize, checks) != (True, True) \
+                        and name != "w20k_n1m":
+                    continue
+                project = write_full_project(fdata, final_optimize, checks)
+                label = (f"{name} final_optimize={'on' if final_optimize else 'off'} "
+                         f"checks={'on' if checks else 'off'}")
+                runs = []
+                for i in range(args.repeat):
+                    r = measure("fullgraph", {"project": str(project)})
+                    print(f"fullgraph {label} run {i + 1}: {r['seconds']:.2f} s, "
+                          f"peak {_mb(r['peak_rss'])}", file=sys.stderr)
+                    runs.append(r)
+                results.setdefault("fullgraph", {})[label] = runs
+                _save(results, args.results)
+            if "baseline_full" in args.only:
+                write_full_project(fdata)
+                r = measure("baseline_full", {"data": str(fdata)})
+                print(f"baseline_full {name}: {r['seconds']:.2f} s, "
+                      f"peak {_mb(r['peak_rss'])}", file=sys.stderr)
+                results.setdefault("baseline_full", {})[name] = [r]
+                _save(results, args.results)
     if "workflow" in args.only:
         project = write_project(data)
         runs = [measure("workflow", {"project": str(project)}) for _ in range(args.repeat)]

@@ -30,7 +30,7 @@ import pynini
 import pywrapfst
 
 from .errors import CheckFailed, EmptyCompositionError, InputCheckFailed
-from .io.fstfile import FstArrays, fst_to_arrays
+from .io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
 from .symbols import BACKOFF, is_auxiliary
 from .bulk import unique_sorted
 
@@ -179,6 +179,17 @@ def has_input_epsilon_cycle(fst: pynini.Fst, arcs: FstArrays | None = None) -> l
         return []
     arcs = arcs or fst_to_arrays(fst)
     eps = arcs.ilabel == 0
+    if not eps.any():
+        return []
+    # OpenFst's cyclicity test over the input-epsilon arcs alone runs in C++; networkx
+    # (a Python graph, slow and large for millions of arcs) only locates a cycle found.
+    n_eps = int(eps.sum())
+    sub = arrays_to_fst(arcs.num_states, 0, np.full(arcs.num_states, np.inf, np.float32),
+                        arcs.src[eps], np.zeros(n_eps, np.int32), np.zeros(n_eps, np.int32),
+                        np.zeros(n_eps, np.float32), arcs.dst[eps])
+    if sub.properties(pywrapfst.CYCLIC, True) != pywrapfst.CYCLIC:
+        return []
+    del sub
     graph = nx.DiGraph()
     graph.add_edges_from(zip(arcs.src[eps].tolist(), arcs.dst[eps].tolist()))
     try:

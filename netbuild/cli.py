@@ -512,7 +512,9 @@ def prune(lm_file: Path, threshold: float, output: Path, heldout_file: Path | No
                               "events": after.events, "oov": after.oov,
                               "oov_policy": after.policy}
     if as_json:
-        _echo_json(summary)
+        from .workflow import plain_json
+
+        _echo_json(plain_json(summary))  # an infinite threshold prints as null
         return
     counts = ", ".join(f"{a} -> {b} {k + 1}-grams" for k, (a, b) in enumerate(
         zip(summary["counts_before"], summary["counts_after"] + [0] * model.max_order)))
@@ -537,12 +539,14 @@ def prune(lm_file: Path, threshold: float, output: Path, heldout_file: Path | No
               show_default=True, help="The graph layout the budget counts (and written).")
 @click.option("--max-builds", type=click.IntRange(2), default=12, show_default=True,
               help="Real builds the search may run.")
+@click.option("--predict/--no-predict", default=True, show_default=True,
+              help="Size the unpruned graph by prediction instead of building it.")
 @click.option("--out", "out_dir", required=True,
               type=click.Path(file_okay=False, path_type=Path),
               help="The output directory (replaced only when the fit is complete).")
 @click.option("--json", "as_json", is_flag=True, help="Print the fit table as JSON.")
-def fit(project_file, budget, heldout_file, representation, max_builds, out_dir, as_json,
-        **flags) -> None:
+def fit(project_file, budget, heldout_file, representation, max_builds, predict, out_dir,
+        as_json, **flags) -> None:
     """Prunes the model so the graph fits --budget (within 5% under it) and builds it."""
     from .fit import fit as run_fit
     from .fit import format_fit_table
@@ -552,19 +556,21 @@ def fit(project_file, budget, heldout_file, representation, max_builds, out_dir,
 
     def progress(step) -> None:
         th = "unigram" if math.isinf(step.threshold) else f"{step.threshold:.3e}"
-        click.echo(f"threshold {th}: {step.ngrams} n-grams, {step.actual_bytes} bytes",
-                   err=True)
+        size = (f"{step.actual_bytes} bytes" if step.actual_bytes is not None
+                else f"predicted {step.predicted_bytes} bytes (not built)")
+        click.echo(f"threshold {th}: {step.ngrams} n-grams, {size}", err=True)
 
     result = run_fit(project, budget, out_dir, heldout=heldout,
                      representation=representation, max_builds=max_builds,
-                     progress=progress)
+                     predict=predict, progress=progress)
     if as_json:
         _echo_json(result.to_json())
         return
     click.echo(format_fit_table(result))
-    if not result.within_tolerance:
+    if not result.within_tolerance and not result.unpruned:
         click.echo("warning: no threshold gave a graph within 5% under the budget; kept "
-                   "the largest graph that fits", err=True)
+                   "the largest graph that fits (raise --max-builds to search longer)",
+                   err=True)
     click.echo(f"wrote {out_dir}")
 
 

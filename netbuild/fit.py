@@ -13,25 +13,28 @@ The budget counts the final graph's in-memory bytes in the chosen representation
 vector as documented there); the graph file is written in that representation.
 
 Search. The pruning criteria are computed once (`netbuild.lm.prune`). The unigram
-model (every n-gram of order >= 2 removed) and the unpruned model are built first:
-if the unigram graph does not fit, no threshold can help and the error names the
-smallest reachable size; if the unpruned graph fits, nothing is pruned. Between them the
-threshold is found by bisection on log10(threshold) against a size prediction aiming
-at the middle of the window ``[budget (1 - tolerance), budget]``; the predicted
-threshold is then built for real, the bracket narrows to the measured side, and the
-search repeats until a real build lands in the window, the bracket cannot be split
-further (two neighbouring n-gram sets), or `max_builds` builds ran. The prediction
-is `predictor(model)` when one is given (calibrated by the ratio of the measured to
-the predicted size of the nearest built candidate), otherwise a line through the two
-bracketing builds' (n-grams, bytes) points. When the window cannot be hit, the
-largest graph under the budget is kept and `FitResult.within_tolerance` is False.
+model (every n-gram of order >= 2 removed) is built first: if its graph does not fit,
+no threshold can help and the error names the smallest reachable size. The unpruned
+model's graph is then sized by `netbuild.predict.predict_graph_size` (sub-builds, no
+full build); it is built for real only when the low end of the prediction fits the
+budget, and if it fits nothing is pruned. In between, the threshold is found by
+bisection on log10(threshold) against a size estimate aiming at the middle of the
+window ``[budget (1 - tolerance), budget]``. The estimate follows the growth law of
+`netbuild.predict` -- the final graph grows with G's arcs as
+``y - y0 = b (x - x0)^p`` above the unigram build (x0, y0) -- through the two ends of
+the current bracket (G is built for each probed threshold, which is cheap). The
+chosen threshold is built for real, the bracket narrows to the measured side, and
+the search repeats until a real build lands in the window, no n-gram set lies
+strictly inside the bracket, or `max_builds` builds ran. When the window cannot be
+hit, the largest built graph under the budget is kept and
+`FitResult.within_tolerance` is False.
 
 Output directory (atomic, as `netbuild.workflow.build`'s): the chosen build's files
 (so every command that takes a build directory accepts it), plus::
 
     model.arpa      the pruned model (its path is the manifest's "inputs"/"lm")
     fit.json        {"budget", "representation", "tolerance", "threshold",
-                     "graph_bytes", "within_tolerance", "heldout", "steps": [
+                     "graph_bytes", "within_tolerance", "unpruned", "heldout", "steps": [
                      {"threshold", "ngrams", "counts", "predicted_bytes",
                       "actual_bytes", "perplexity"}]}
 
@@ -53,14 +56,19 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .errors import ProjectError
+from .builders.grammar import build_grammar
+from .builders.vocabulary import restrict_vocabulary
+from .errors import Diagnostics, ProjectError
 from .inspectors.size import file_size
-from .io.arpa import ArpaModel, read_arpa
+from .io.arpa import ArpaModel
 from .lm.perplexity import perplexity
 from .lm.prune import PruneResult, prune_model, pruning_criteria, write_model_atomically
 from .lm.query import BackoffScorer
+from .pipeline import num_arcs
+from .predict import predict_graph_size
 from .project import Project, require_inputs
-from .workflow import MANIFEST, atomic_directory, build, check_out_dir, plain_json
+from .workflow import (MANIFEST, atomic_directory, build, check_out_dir, plain_json,
+                       read_inputs)
 
 __all__ = ["FitResult", "FitStep", "Representation", "fit", "format_fit_table",
            "graph_bytes"]
@@ -101,12 +109,17 @@ class FitResult:
     within_tolerance: bool
     manifest: dict[str, Any]
 
+    @property
+    def unpruned(self) -> bool:
+        """True when the unpruned model's graph fits and nothing was pruned."""
+        return self.chosen.threshold == 0.0
+
     def to_json(self) -> dict[str, Any]:
         return {"out_dir": str(self.out_dir), "budget": self.budget,
                 "representation": self.representation, "tolerance": self.tolerance,
                 "threshold": plain_json(self.chosen.threshold),
                 "graph_bytes": self.chosen.actual_bytes,
-                "within_tolerance": self.within_tolerance,
+                "within_tolerance": self.within_tolerance, "unpruned": self.unpruned,
                 "steps": [s.to_json() for s in self.steps]}
 
 
@@ -123,17 +136,20 @@ def graph_bytes(build_dir: str | os.PathLike, representation: Representation = "
 class _Built:
     step: FitStep
     result: PruneResult
-    directory: Path
+    directory: Path | None  # None: predicted, not built
+    grammar_arcs: int
 
 
 class _Search:
     """Builds candidates in a scratch directory and keeps their measurements."""
 
-    def __init__(self, project: Project, model: ArpaModel, representation: Representation,
-                 scratch: Path, heldout: Sequence[Sequence[str]] | None,
+    def __init__(self, project: Project, model: ArpaModel, words: set[str],
+                 representation: Representation, scratch: Path,
+                 heldout: Sequence[Sequence[str]] | None,
                  progress: Callable[[FitStep], None] | None) -> None:
         self.project = project
         self.model = model
+        self.words = words
         self.criteria = pruning_criteria(model)
         self.representation = representation
         self.scratch = scratch
@@ -142,35 +158,55 @@ class _Search:
         self.steps: list[FitStep] = []
         self.built: list[_Built] = []
         self._pruned: dict[float, PruneResult] = {}
+        self._grammar_arcs: dict[int, int] = {}
 
     def prune(self, threshold: float) -> PruneResult:
         if threshold not in self._pruned:
             self._pruned[threshold] = prune_model(self.model, threshold, self.criteria)
         return self._pruned[threshold]
 
+    def grammar_arcs(self, pruned: PruneResult) -> int:
+        """Arcs of G for the pruned model (the kept sets are nested, so the n-gram
+        count identifies the set)."""
+        key = pruned.ngrams
+        if key not in self._grammar_arcs:
+            restricted, _ = restrict_vocabulary(pruned.model, self.words,
+                                                self.project.options.grammar.oov_policy)
+            self._grammar_arcs[key] = num_arcs(build_grammar(restricted).fst)
+        return self._grammar_arcs[key]
+
+    def _perplexity(self, pruned: PruneResult) -> float | None:
+        if self.heldout is None:
+            return None
+        return perplexity(BackoffScorer(pruned.model), self.heldout).perplexity
+
+    def _record(self, built: _Built) -> _Built:
+        self.steps.append(built.step)
+        if self.progress is not None:
+            self.progress(built.step)
+        return built
+
+    def predicted_only(self, threshold: float, predicted: int) -> _Built:
+        """A step that is predicted, not built (the unpruned model far over budget)."""
+        pruned = self.prune(threshold)
+        step = FitStep(float(threshold), pruned.ngrams, tuple(pruned.counts_after),
+                       predicted, None, self._perplexity(pruned))
+        return self._record(_Built(step, pruned, None, self.grammar_arcs(pruned)))
+
     def evaluate(self, threshold: float, predicted: int | None) -> _Built:
         pruned = self.prune(threshold)
-        for b in self.built:  # the same n-gram set was built already
-            if b.result.counts_after == pruned.counts_after and \
-                    all((k1 == k2).all() for k1, k2 in zip(b.result.kept, pruned.kept)):
-                return b
         index = len(self.built)
         lm = self.scratch / f"candidate-{index}.arpa"
         write_model_atomically(pruned.model, lm)
         out = self.scratch / f"build-{index}"
         opts = dataclasses.replace(self.project.options, fst_type=self.representation)
         build(dataclasses.replace(self.project, lm=lm, options=opts), out)
-        ppl = None
-        if self.heldout is not None:
-            ppl = perplexity(BackoffScorer(pruned.model), self.heldout).perplexity
         step = FitStep(float(threshold), pruned.ngrams, tuple(pruned.counts_after),
-                       predicted, graph_bytes(out, self.representation), ppl)
-        self.steps.append(step)
-        if self.progress is not None:
-            self.progress(step)
-        built = _Built(step, pruned, out)
+                       predicted, graph_bytes(out, self.representation),
+                       self._perplexity(pruned))
+        built = _Built(step, pruned, out, self.grammar_arcs(pruned))
         self.built.append(built)
-        return built
+        return self._record(built)
 
 
 def _threshold_range(criteria: list[np.ndarray]) -> tuple[float, float]:
@@ -182,10 +218,33 @@ def _threshold_range(criteria: list[np.ndarray]) -> tuple[float, float]:
     return float(np.log10(values.min())) - 0.5, float(np.log10(values.max())) + 0.5
 
 
+def _bytes(b: _Built) -> float:
+    """The measured size of a step, or its prediction when it was not built."""
+    size = b.step.actual_bytes if b.step.actual_bytes is not None else b.step.predicted_bytes
+    assert size is not None
+    return float(size)
+
+
+def _power_law(base: _Built, lo: _Built, hi: _Built, x: float) -> float:
+    """The graph size at G arcs `x`, on the curve size - y0 = b (x - x0)^p through the
+    bracket's ends (x0, y0: the unigram build); linear when `hi` is the unigram build."""
+    x0, y0 = base.grammar_arcs, _bytes(base)
+    if x <= x0:
+        return y0
+    dx_lo, dy_lo = lo.grammar_arcs - x0, _bytes(lo) - y0
+    if dx_lo <= 0 or dy_lo <= 0:
+        return y0
+    dx_hi, dy_hi = hi.grammar_arcs - x0, _bytes(hi) - y0
+    if hi is base or dx_hi <= 0 or dy_hi <= 0 or dx_hi == dx_lo:
+        return y0 + dy_lo * (x - x0) / dx_lo
+    p = math.log(dy_lo / dy_hi) / math.log(dx_lo / dx_hi)
+    return y0 + dy_hi * math.exp(p * (math.log(x - x0) - math.log(dx_hi)))
+
+
 def fit(project: Project, budget: int, out_dir: str | os.PathLike, *,
         heldout: Sequence[Sequence[str]] | None = None,
         representation: Representation = "const", tolerance: float = 0.05,
-        max_builds: int = 12, predictor: Callable[[ArpaModel], int] | None = None,
+        max_builds: int = 12, predict: bool = True,
         progress: Callable[[FitStep], None] | None = None) -> FitResult:
     """Prunes the project's model so its graph fits `budget` bytes (see the module docstring).
 
@@ -196,9 +255,10 @@ def fit(project: Project, budget: int, out_dir: str | os.PathLike, *,
       heldout: tokenised sentences; each step's perplexity on them is recorded.
       representation: "const" or "vector", the layout the budget counts.
       tolerance: the fraction under the budget the graph may stay (0.05: within 5 %).
-      max_builds: real builds allowed, the two end points included.
-      predictor: a size prediction of the graph of a model (bytes), optional.
-      progress: called with each built step.
+      max_builds: real builds allowed, the unigram one included.
+      predict: size the unpruned graph with `netbuild.predict.predict_graph_size`
+        and build it only when it may fit; False builds it.
+      progress: called with each step.
 
     Returns:
       A `FitResult`.
@@ -217,72 +277,77 @@ def fit(project: Project, budget: int, out_dir: str | os.PathLike, *,
     if not 0.0 < tolerance < 1.0:
         raise ProjectError(f"tolerance {tolerance} is not between 0 and 1",
                            "give e.g. 0.05", path="--tolerance")
+    if max_builds < 2:
+        raise ProjectError(f"max_builds {max_builds} is below 2",
+                           "allow at least 2 builds", path="--max-builds")
     require_inputs(project)
     out = check_out_dir(out_dir)
-    assert project.lm is not None
-    model = read_arpa(project.lm)
+    diag = Diagnostics()
+    inputs = read_inputs(project, diag)  # every input problem before any work
+    diag.raise_if_errors()
+    assert inputs is not None
     out.parent.mkdir(parents=True, exist_ok=True)
     scratch = Path(tempfile.mkdtemp(prefix=f".{out.name}.fit-", dir=out.parent))
     try:
-        search = _Search(project, model, representation, scratch, heldout, progress)
-        chosen, within = _find(search, budget, tolerance, max_builds, predictor)
+        search = _Search(project, inputs.model, set(inputs.lexicon.words()),
+                         representation, scratch, heldout, progress)
+        chosen, within = _find(search, budget, tolerance, max_builds, predict)
         return _publish(search, chosen, within, out, budget, tolerance)
     finally:
         shutil.rmtree(scratch, ignore_errors=True)
 
 
 def _find(search: _Search, budget: int, tolerance: float, max_builds: int,
-          predictor: Callable[[ArpaModel], int] | None) -> tuple[_Built, bool]:
+          predict: bool) -> tuple[_Built, bool]:
     floor = budget * (1.0 - tolerance)
     smallest = search.evaluate(math.inf, None)  # the cheapest build first
-    if smallest.step.actual_bytes > budget:
-        need = smallest.step.actual_bytes
+    if _bytes(smallest) > budget:
+        need = int(_bytes(smallest))
         raise ProjectError(
             f"budget of {budget} bytes is below the smallest graph pruning can reach: "
             f"the unigram model's graph takes {need} bytes ({need / 2**20:.2f} MiB, "
             f"{search.representation})",
             f"give --budget {need} or more, or shrink the lexicon or the context map",
             path="--budget")
-    full = search.evaluate(0.0, None)
-    if full.step.actual_bytes <= budget:
-        return full, full.step.actual_bytes >= floor
-    if smallest.step.actual_bytes >= floor:
+    full: _Built | None = None
+    if predict:
+        prediction = predict_graph_size(search.project)
+        guess = prediction.memory_bytes[search.representation]
+        if prediction.memory_low[search.representation] > budget:
+            full = search.predicted_only(0.0, guess)
+    if full is None:
+        full = search.evaluate(0.0, guess if predict else None)
+        if _bytes(full) <= budget:
+            return full, _bytes(full) >= floor
+    if _bytes(smallest) >= floor:
         return smallest, True
     lo, hi = full, smallest  # lo: over the budget; hi: under it, below the window
     lo_log, hi_log = _threshold_range(search.criteria)
     target = budget * (1.0 - tolerance / 2.0)
     while len(search.built) < max_builds:
-        def predict(threshold: float) -> float:
-            pruned = search.prune(threshold)
-            if predictor is not None:
-                guess = float(predictor(pruned.model))
-                near = min((lo, hi), key=lambda b: abs(b.step.ngrams - pruned.ngrams))
-                scale = near.step.actual_bytes / max(float(predictor(near.result.model)), 1.0)
-                return guess * scale
-            span = lo.step.ngrams - hi.step.ngrams
-            frac = (pruned.ngrams - hi.step.ngrams) / span if span else 0.0
-            return hi.step.actual_bytes + frac * (lo.step.actual_bytes - hi.step.actual_bytes)
+        def size(threshold: float) -> float:
+            x = search.grammar_arcs(search.prune(threshold))
+            return _power_law(smallest, lo, hi, x)
 
         a = lo_log if lo.step.threshold <= 0 else math.log10(lo.step.threshold)
         b = hi_log if math.isinf(hi.step.threshold) else math.log10(hi.step.threshold)
         for _ in range(_BISECTION_STEPS):
             mid = 0.5 * (a + b)
-            if predict(10.0 ** mid) > target:
+            if size(10.0 ** mid) > target:
                 a = mid
             else:
                 b = mid
-        threshold = 10.0 ** b  # the side predicted under the target
-        pruned = search.prune(threshold)
-        if pruned.ngrams in (lo.step.ngrams, hi.step.ngrams):
-            threshold = 10.0 ** a
-            pruned = search.prune(threshold)
-            if pruned.ngrams in (lo.step.ngrams, hi.step.ngrams):
-                break  # no n-gram set lies strictly between the bracket's ends
-        cand = search.evaluate(threshold, int(round(predict(threshold))))
-        size = cand.step.actual_bytes
-        if floor <= size <= budget:
+            if search.prune(10.0 ** a).ngrams - search.prune(10.0 ** b).ngrams <= 1:
+                break
+        ends = (lo.step.ngrams, hi.step.ngrams)
+        threshold = next((10.0 ** t for t in (b, a)
+                          if search.prune(10.0 ** t).ngrams not in ends), None)
+        if threshold is None:
+            break  # no n-gram set lies strictly between the bracket's ends
+        cand = search.evaluate(threshold, int(round(size(threshold))))
+        if floor <= _bytes(cand) <= budget:
             return cand, True
-        if size > budget:
+        if _bytes(cand) > budget:
             lo = cand
         else:
             hi = cand
@@ -292,6 +357,7 @@ def _find(search: _Search, budget: int, tolerance: float, max_builds: int,
 def _publish(search: _Search, chosen: _Built, within: bool, out: Path, budget: int,
              tolerance: float) -> FitResult:
     final_lm = out / MODEL_FILE
+    assert chosen.directory is not None  # only built steps are chosen
     with atomic_directory(out) as tmp:
         for entry in chosen.directory.iterdir():
             os.replace(entry, tmp / entry.name)
@@ -322,7 +388,12 @@ def format_fit_table(result: FitResult) -> str:
         lines.append(f"{mark} {th:>11} {s.ngrams:>9} {pred:>12} {act:>12} {ppl:>10}")
     size = result.chosen.actual_bytes or 0
     under = (result.budget - size) / result.budget * 100.0
-    verdict = ("within" if result.within_tolerance else "NOT within")
+    if result.within_tolerance:
+        verdict = f"within {result.tolerance:.0%}"
+    elif result.unpruned:
+        verdict = "the unpruned model fits, nothing was pruned"
+    else:
+        verdict = f"NOT within {result.tolerance:.0%}, the largest graph that fits"
     lines.append(f"graph {size} bytes ({result.representation}), {under:.1f}% under the "
-                 f"budget of {result.budget} bytes: {verdict} {result.tolerance:.0%}")
+                 f"budget of {result.budget} bytes: {verdict}")
     return "\n".join(lines)

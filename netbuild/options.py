@@ -41,6 +41,6 @@ class BuildOptions:
     fst_type: FstType = "vector"
     determinize_max_memory: int = 8 * 1024**3  # bytes; child-process limit
     determinize_timeout: float = 1800.0  # seconds
-    max_memory: int | None = None  # bytes; stop before a stage estimated to need more
+    max_memory: int = 0  # bytes; stop before a stage estimated to need more; 0: no limit
     transition_scale: float = 1.0  # full graph: multiplies the HMM self-loop and exit costs
     final_optimize: bool = True  # full graph: determinize and minimize H∘C∘L∘G

@@ -114,6 +114,9 @@ def compose_stage(lfst: pynini.Fst, gfst: pynini.Fst) -> pynini.Fst:
         raise StageError("compose", f"OpenFst could not compose L and G ({err})",
                          "check that L's output and G's input use the same word "
                          "symbol table") from err
+    # Sorted before the test below, so the test's array conversion is the one the
+    # stage's checks reuse (sorting afterwards would make them convert again).
+    ofst.arcsort(sort_type="ilabel")
     # Through the back-off loop L∘G may still accept the empty sentence: no word at all
     # on the output side is the same failure.
     if (ofst.start() == pynini.NO_STATE_ID or ofst.num_states() == 0
@@ -123,7 +126,6 @@ def compose_stage(lfst: pynini.Fst, gfst: pynini.Fst) -> pynini.Fst:
             "(or no sentence of the model can be spelt with the lexicon)",
             "check that the lexicon and the language model use the same word spellings "
             "and that the model's words have pronunciations")
-    ofst.arcsort(sort_type="ilabel")
     return ofst
 
 

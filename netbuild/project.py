@@ -38,7 +38,7 @@ Relative paths are taken relative to the directory holding the project file::
     determinize_max_memory = "8GiB"  # a size string, or an integer number of bytes
     determinize_timeout = 1800   # seconds (integer or float, > 0)
     max_memory = "16GiB"         # stop before a stage estimated to need more (size);
-                                 # also caps determinize_max_memory; absent: no limit
+                                 # also caps determinize_max_memory; 0 (default): no limit
     final_optimize = true        # full graph: determinize and minimize H∘C∘L∘G
 
     [hmm]

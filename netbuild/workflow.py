@@ -475,7 +475,7 @@ def build(project: Project, out_dir: str | os.PathLike,
         assert inputs is not None  # no errors means every input was read
         opts = project.options
         guard = None
-        if opts.max_memory is not None:
+        if opts.max_memory:
             # The determinization child may never have more than the whole build.
             opts = dataclasses.replace(opts, determinize_max_memory=min(
                 opts.determinize_max_memory, opts.max_memory))

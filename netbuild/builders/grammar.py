@@ -65,6 +65,7 @@ from ..symbols import (BACKOFF, EPSILON, SENTENCE_END, SENTENCE_START, is_auxili
 __all__ = ["GrammarResult", "build_grammar", "word_symbol_table"]
 
 LN10 = math.log(10.0)
+_FEW_RUNS = 64
 
 
 @dataclasses.dataclass
@@ -144,6 +145,34 @@ class _Packer:
         return keys.view(">u4").reshape(-1, length).astype(np.int32)
 
 
+def _is_sorted(keys: np.ndarray) -> bool:
+    """True if int64 `keys` are non-decreasing (one linear pass; False for void keys).
+
+    ARPA files usually list n-grams sorted by word ids, and then the keys arrive
+    sorted: checking first saves the sorts and makes the binary searches sequential.
+    """
+    if keys.dtype != np.int64:
+        return False
+    return keys.shape[0] < 2 or bool((keys[1:] >= keys[:-1]).all())
+
+
+def _sort(keys: np.ndarray) -> np.ndarray:
+    """`keys` sorted (the array itself when already sorted)."""
+    return keys if _is_sorted(keys) else np.sort(keys)
+
+
+def _unique(keys: np.ndarray) -> np.ndarray:
+    """Sorted distinct keys (as `unique_sorted`, without a sort for sorted input)."""
+    if not _is_sorted(keys):
+        return unique_sorted(keys)
+    if keys.shape[0] == 0:
+        return keys
+    keep = np.empty(keys.shape[0], dtype=bool)
+    keep[0] = True
+    np.not_equal(keys[1:], keys[:-1], out=keep[1:])
+    return keys[keep]
+
+
 def _sort_order(keys: np.ndarray) -> np.ndarray:
     """A permutation sorting non-negative int64 `keys` (ties in any order).
 
@@ -151,6 +180,14 @@ def _sort_order(keys: np.ndarray) -> np.ndarray:
     is used when key and index fit into 63 bits together.
     """
     n = keys.shape[0]
+    if keys.dtype == np.int64 and n > 1:
+        descents = int(np.count_nonzero(keys[1:] < keys[:-1]))
+        if descents == 0:
+            return np.arange(n)
+        if descents < _FEW_RUNS:
+            # A few sorted runs (concatenated sorted parts): the stable sort (timsort)
+            # merges them in about linear time.
+            return np.argsort(keys, kind="stable")
     if keys.dtype == np.int64 and n:
         index_bits = max(1, int(n - 1).bit_length())
         top = int(keys.max())
@@ -182,9 +219,12 @@ def _lookup(sorted_keys: np.ndarray, queries: np.ndarray) -> np.ndarray:
     if sorted_keys.shape[0] == 0 or queries.shape[0] == 0:
         return np.full(queries.shape[0], -1, dtype=np.int64)
     # Sorted queries make the binary searches cache-friendly.
-    order = _sort_order(queries)
-    pos = np.empty(queries.shape[0], dtype=np.int64)
-    pos[order] = np.searchsorted(sorted_keys, queries[order])
+    if _is_sorted(queries):
+        pos = np.searchsorted(sorted_keys, queries)
+    else:
+        order = _sort_order(queries)
+        pos = np.empty(queries.shape[0], dtype=np.int64)
+        pos[order] = np.searchsorted(sorted_keys, queries[order])
     np.minimum(pos, sorted_keys.shape[0] - 1, out=pos)
     return np.where(sorted_keys[pos] == queries, pos, -1)
 
@@ -219,8 +259,8 @@ class _Histories:
         holes: list[np.ndarray | None] = [None] * (top + 1)
         ctx_rows = model.orders[top].words[:, :top] if top >= 1 else None
         for length in range(top, 0, -1):
-            ngram_keys = np.sort(pack(model.orders[length - 1].words))
-            ctx_keys = unique_sorted(pack(ctx_rows))
+            ngram_keys = _sort(pack(model.orders[length - 1].words))
+            ctx_keys = _unique(pack(ctx_rows))
             if length == 1 and self.bos >= 0:
                 ctx_keys = np.union1d(ctx_keys, np.array([self.bos], dtype=np.int64))
             contexts[length] = ctx_keys
@@ -312,21 +352,37 @@ class _Histories:
         m, length = rows.shape
         dest = np.zeros(m, dtype=np.int64)
         folded = np.zeros(m, dtype=np.float64)
-        pending = np.arange(m)
+        pending: np.ndarray | None = None  # rows still unresolved (None: all of them)
         for j in range(length):
-            if pending.size == 0:
-                break
-            sub = rows[pending, j:]
             level = self.levels[length - j]
-            found = ids[pending] if (j == 0 and ids is not None) else self.find(sub)
+            if pending is None:
+                found = ids if (j == 0 and ids is not None) else self.find(rows[:, j:])
+            else:
+                if pending.size == 0:
+                    break
+                found = self.find(rows[pending, j:])
             ok = found >= 0
-            safe = np.where(ok, found, 0)
-            st = np.where(ok, level.state[safe], -1)
+            st = level.state[np.where(ok, found, 0)]
+            st[~ok] = -1
             hit = st >= 0
-            dest[pending[hit]] = st[hit]
-            miss = ~hit
-            folded[pending[miss]] += np.where(ok[miss], level.alpha[safe[miss]], 0.0)
-            pending = pending[miss]
+            if hit.all():
+                if pending is None:
+                    dest[:] = st
+                else:
+                    dest[pending] = st
+                pending = pending[:0] if pending is not None else np.zeros(0, np.int64)
+                break
+            miss = np.flatnonzero(~hit)
+            hits = np.flatnonzero(hit)
+            alpha = np.where(ok[miss], level.alpha[found[miss].clip(0)], 0.0)
+            if pending is None:
+                dest[hits] = st[hits]
+                folded[miss] += alpha
+                pending = miss
+            else:
+                dest[pending[hits]] = st[hits]
+                folded[pending[miss]] += alpha
+                pending = pending[miss]
         # Rows still pending end at the empty history, state 0.
         return dest, folded
 

@@ -26,7 +26,12 @@ import dataclasses
 import gzip
 import io
 import os
+import collections
+import concurrent.futures
+import contextlib
+import queue
 import re
+import threading
 from collections.abc import Iterator
 from typing import BinaryIO
 
@@ -92,6 +97,7 @@ _SECTION_RE = re.compile(rb"\\([0-9]+)-grams:")
 _ASCII_WS_RE = re.compile(r"[\t\n\x0b\x0c\r ]")
 _MAX_KEY_BYTES = 32  # words up to this length are looked up in numpy, longer ones in a dict
 _MAX_PROBLEMS = 10_000
+_WORKERS = 2  # threads parsing pieces of the higher orders
 _HOLE_CAP = 1 << 62
 
 
@@ -106,61 +112,64 @@ class _Vocab:
         self.ids: dict[bytes, int] = {}
         self.words: list[bytes] = []
         self._index_size = -1
+        self._lock = threading.Lock()
 
     def index(self):
-        """(table, shift, hashes, keys, lens): an open-address table of word ids by hash."""
-        if self._index_size != len(self.words):
-            n = len(self.words)
-            keys = np.zeros((n, _MAX_KEY_BYTES), np.uint8)
-            lens = np.fromiter(map(len, self.words), np.int64, n)
-            for i, w in enumerate(self.words):
-                if len(w) <= _MAX_KEY_BYTES:
-                    keys[i, :len(w)] = np.frombuffer(w, np.uint8)
-            x = keys.view(np.uint64)
-            h = _hash_rows(x)
-            bits = max(int(n * 4).bit_length(), 4)
-            shift = np.uint64(64 - bits)
-            table = np.full(1 << bits, -1, np.int32)
-            slot = (h >> shift).astype(np.int64)
-            # first word per slot wins; words sharing a slot are found through the dict
-            table[slot[::-1]] = np.arange(n, dtype=np.int32)[::-1]
-            lost = np.flatnonzero(table[slot] != np.arange(n))
-            table2 = np.full(1 << bits, -1, np.int32)
-            mask = np.uint64((1 << bits) - 1)
-            slot2 = (h[lost] & mask).astype(np.int64)
-            table2[slot2[::-1]] = lost[::-1].astype(np.int32)
-            self._index = (table, table2, shift, mask, h, x, lens)
-            self._index_size = n
-        return self._index
+        """(table, table2, shift, mask, key columns, lens): open-address tables of word
+        ids by hash (a word that loses its slot in both is found through `ids`)."""
+        with self._lock:
+            if self._index_size != len(self.words):
+                self._index = self._build_index()
+                self._index_size = len(self.words)
+            return self._index
+
+    def _build_index(self):
+        n = len(self.words)
+        keys = np.zeros((n, _MAX_KEY_BYTES), np.uint8)
+        lens = np.fromiter(map(len, self.words), np.int64, n)
+        for i, w in enumerate(self.words):
+            if len(w) <= _MAX_KEY_BYTES:
+                keys[i, :len(w)] = np.frombuffer(w, np.uint8)
+        x = keys.view(np.uint64)
+        cols = [np.ascontiguousarray(x[:, j]) for j in range(x.shape[1])]
+        h = _hash_cols(cols)
+        bits = max(int(n * 4).bit_length(), 4)
+        shift = np.uint64(64 - bits)
+        table = np.full(1 << bits, -1, np.int32)
+        slot = (h >> shift).astype(np.int64)
+        # first word per slot wins; words sharing a slot are found through the second
+        # table (other hash bits) or the dict
+        table[slot[::-1]] = np.arange(n, dtype=np.int32)[::-1]
+        lost = np.flatnonzero(table[slot] != np.arange(n))
+        table2 = np.full(1 << bits, -1, np.int32)
+        mask = np.uint64((1 << bits) - 1)
+        slot2 = (h[lost] & mask).astype(np.int64)
+        table2[slot2[::-1]] = lost[::-1].astype(np.int32)
+        return table, table2, shift, mask, cols, lens
 
 
-_MUL1, _MUL2 = np.uint64(0xFF51AFD7ED558CCD), np.uint64(0xC4CEB9FE1A85EC53)
+_MULS = [np.uint64(c) for c in (0x9E3779B97F4A7C15, 0xC2B2AE3D27D4EB4F,
+                                0x165667B19E3779F9, 0xD6E8FEB86659FD93)]
+_MIX1, _MIX2 = np.uint64(0xFF51AFD7ED558CCD), np.uint64(0xC4CEB9FE1A85EC53)
 _S29, _S32 = np.uint64(29), np.uint64(32)
-_SALT = np.array([0x9E3779B97F4A7C15 * (j + 1) % 2**64 for j in range(_MAX_KEY_BYTES // 8)],
-                 np.uint64)
 
 
-def _mix(x: np.ndarray) -> np.ndarray:
-    x = x * _MUL1
-    x ^= x >> _S29
-    x *= _MUL2
-    x ^= x >> _S32
-    return x
-
-
-_MIX_SALT = _mix(_SALT)
-
-
-def _hash_rows(x: np.ndarray) -> np.ndarray:
-    """A 64-bit hash of each row of a (k, m) uint64 array; all-zero columns add nothing,
-    so a word hashes the same whatever padding width it was gathered with."""
-    h = np.zeros(x.shape[0], np.uint64)
-    for j in range(x.shape[1]):
-        h ^= _mix(x[:, j] ^ _SALT[j]) ^ _MIX_SALT[j]
+def _hash_cols(cols: list[np.ndarray]) -> np.ndarray:
+    """A 64-bit hash of rows given as uint64 columns; all-zero columns add nothing, so
+    a word hashes the same whatever padding width it was gathered with."""
+    h = cols[0] * _MULS[0]
+    for j in range(1, len(cols)):
+        h ^= cols[j] * _MULS[j]
+    h ^= h >> _S29
+    h *= _MIX1
+    h ^= h >> _S32
+    h *= _MIX2
     return h
 
 
 _LENMASK = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [2**64 - 1], np.uint64)
+# _COLMASK[j][n]: the mask keeping the bytes of word column j of a token of n bytes
+_COLMASK = [_LENMASK[np.clip(np.arange(64) - 8 * j, 0, 8)] for j in range(_MAX_KEY_BYTES // 8)]
 
 
 def _unaligned_u64(padded: bytes) -> np.ndarray:
@@ -168,49 +177,83 @@ def _unaligned_u64(padded: bytes) -> np.ndarray:
     return np.ndarray(shape=(len(padded) - 7,), dtype="<u8", buffer=padded, strides=(1,))
 
 
-def _gather(u64: np.ndarray, starts: np.ndarray, lens: np.ndarray, width: int) -> np.ndarray:
-    """The bytes of each token as (k, width // 8) uint64, zero past the token's end."""
-    cols = width // 8
-    out = np.empty((len(starts), cols), np.uint64)
-    for j in range(cols):
-        out[:, j] = u64[starts + 8 * j] & _LENMASK[np.clip(lens - 8 * j, 0, 8)]
-    return out
+def _gather(u64: np.ndarray, starts: np.ndarray, lens: np.ndarray, width: int
+            ) -> list[np.ndarray]:
+    """The bytes of each token as width // 8 uint64 columns, zero past the token's end."""
+    lc = np.minimum(lens, 63)
+    return [u64[starts + 8 * j] & _COLMASK[j][lc] for j in range(width // 8)]
+
+
+_P10I = 10 ** np.arange(19, dtype=np.int64)
+_P10F = 10.0 ** np.arange(23)
+_B48 = np.uint8(48)
+_L1, _L2 = np.uint64(0x00FF00FF00FF00FF), np.uint64(0x0000FFFF0000FFFF)
+_L3 = np.uint64(0xFFFFFFFF)
+_S8, _S16 = np.uint64(8), np.uint64(16)
+_U10, _U100, _U10K, _ONE = np.uint64(10), np.uint64(100), np.uint64(10000), np.uint64(1)
+
+
+def _plain_decimals(win: np.ndarray, starts: np.ndarray, lens: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray]:
+    """Values of tokens ``[+-]digits[.digits]`` of at most 16 bytes and 15 digits.
+
+    Returns (values, ok); where ok is False the token needs the general parser. The
+    digits form an integer m < 10**15 < 2**53 and m / 10**f (f <= 15, both exact
+    doubles) is the correctly rounded value, the same double `float()` returns. The
+    digits are combined eight at a time inside 64-bit words (each step joins
+    neighbouring lanes: d*10 + d', then pairs*100, then quads*10**4).
+    """
+    k = len(starts)
+    lc = np.minimum(lens, 63)
+    x = np.empty((k, 2), np.uint64)
+    x[:, 0] = win[starts] & _COLMASK[0][lc]
+    x[:, 1] = win[starts + 8] & _COLMASK[1][lc]
+    b = x.view(np.uint8)  # (k, 16): the token's bytes, zero past its end
+    d = b - _B48
+    isd = d < 10
+    d *= isd
+    bits = np.bitwise_count(isd.view(np.uint64))
+    ndig = bits[:, 0] + bits[:, 1]
+    dots = (b == 46).view(np.uint64)
+    bits = np.bitwise_count(dots)
+    ndot = bits[:, 0] + bits[:, 1]
+    first = b[:, 0]
+    neg = first == 45
+    sign = neg | (first == 43)
+    ok = (ndig + ndot + sign == lens) & (ndot <= 1) & (ndig >= 1) & (ndig <= 15)
+    v = d.view(np.uint64)
+    v = (v * _U10 + (v >> _S8)) & _L1
+    v = (v * _U100 + (v >> _S16)) & _L2
+    v = (v * _U10K + (v >> _S32)) & _L3
+    t = v.view(np.int64)
+    # 16 places, left-aligned, with sign, dot and padding read as 0 digits
+    total = t[:, 0] * 100_000_000 + t[:, 1]
+    lk = np.where(ok, lens, 16)
+    total //= _P10I[16 - lk]
+    # dot position: the bytes below the dot in its word (64 bits where a word has none)
+    pre = np.bitwise_count(dots - _ONE)
+    pos = (pre[:, 0] >> 3) + np.where(dots[:, 0] == 0, pre[:, 1] >> 3, 0)
+    hasdot = ok & (ndot == 1)
+    frac = np.where(hasdot, lk - 1 - pos.astype(np.int64), 0)
+    scale = _P10I[frac + hasdot]
+    hi = total // scale
+    mant = np.where(hasdot, hi * _P10I[frac] + (total - hi * scale), total)
+    out = mant.astype(np.float64) / _P10F[frac]
+    np.negative(out, out=out, where=neg)
+    return out, ok
 
 
 def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
                    seg: bytes) -> np.ndarray | None:
     """Parses decimal tokens exactly; None if any token is not a finite number.
 
-    Tokens of at most 15 significant digits without exponent are parsed in numpy: the
-    digits form an integer m < 2**53 and m / 10**f (f <= 22, both exact doubles) is
-    the correctly rounded value, the same double `float()` returns. Other tokens go
-    through `float()`.
+    Plain decimals go through `_plain_decimals`; other tokens (exponents, more than 15
+    digits) through `float()` after the same syntax check as the line-by-line reader.
     """
-    k = len(starts)
-    out = np.empty(k)
-    if k == 0:
-        return out
-    w = int(min(max(int(lens.max()), 1), 15))
-    m = _gather(win, starts, lens, -(-w // 8) * 8).view(np.uint8)[:, :w]
-    d = m - np.uint8(48)
-    digit = d < 10
-    dot = m == 46
-    ndig = digit.sum(1)
-    ndot = dot.sum(1)
-    neg = m[:, 0] == 45
-    sign = neg | (m[:, 0] == 43)
-    fast = (ndig + ndot + sign == lens) & (ndot <= 1) & (ndig >= 1)
-    # All digits (sign and dot read as 0) as one integer, left-aligned in w places:
-    # every partial sum is an integer below 10**15 < 2**53, hence exact.
-    total = np.where(digit, d, 0).astype(np.float64) @ (10.0 ** np.arange(w - 1, -1, -1))
-    total /= 10.0 ** (w - np.minimum(lens, w))
-    frac = np.where(ndot == 1, lens - 1 - np.argmax(dot, axis=1), 0)
-    scale = 10.0 ** frac
-    low = np.fmod(total, scale)
-    mant = np.where(ndot == 1, low + (total - low) / 10.0, total)
-    out[:] = mant / scale
-    out[neg] *= -1.0
-    slow = np.flatnonzero(~fast)
+    if len(starts) == 0:
+        return np.empty(0)
+    out, ok = _plain_decimals(win, starts, lens)
+    slow = np.flatnonzero(~ok)
     if len(slow):
         try:
             for i in slow.tolist():
@@ -221,8 +264,8 @@ def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
                 out[i] = float(tok)
         except ValueError:
             return None
-    if not np.isfinite(out).all():
-        return None
+        if not np.isfinite(out[slow]).all():
+            return None
     return out
 
 
@@ -232,23 +275,28 @@ def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray
     k = len(starts)
     if k == 0:
         return np.zeros(0, np.int32)
-    table, table2, shift, mask, vhash, vkeys, vlens = vocab.index()
-    if len(vhash) == 0:
+    table, table2, shift, mask, vcols, vlens = vocab.index()
+    if len(vlens) == 0:
         return None
     maxlen = int(lens.max())
     width = min(-(-maxlen // 8) * 8, _MAX_KEY_BYTES)
     x = _gather(win, starts, lens, width)
-    h = _hash_rows(x)
-    cand = np.maximum(table[(h >> shift).astype(np.int64)], 0)
-    ok = (vhash[cand] == h) & (vlens[cand] == lens) & (lens <= width)
+    h = _hash_cols(x)
+    cand = table[h >> shift]
+    np.maximum(cand, 0, out=cand)
+    ok = vlens[cand] == lens
+    for j, col in enumerate(x):
+        ok &= vcols[j][cand] == col
     miss = np.flatnonzero(~ok)
     if len(miss):  # second choice for words that lost their slot in the first table
-        c2 = np.maximum(table2[(h[miss] & mask).astype(np.int64)], 0)
+        c2 = np.maximum(table2[h[miss] & mask], 0)
         cand[miss] = c2
-        ok[miss] = (vhash[c2] == h[miss]) & (vlens[c2] == lens[miss]) & (lens[miss] <= width)
-    for j in range(width // 8):
-        ok &= vkeys[:, j][cand] == x[:, j]
-    ids = cand.astype(np.int32)
+        ok2 = vlens[c2] == lens[miss]
+        for j, col in enumerate(x):
+            ok2 &= vcols[j][c2] == col[miss]
+        ok[miss] = ok2
+    if maxlen > width:
+        ok &= lens <= width
     bad = np.flatnonzero(~ok)
     if len(bad):
         get = vocab.ids.get
@@ -257,8 +305,8 @@ def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray
             wid = get(seg[s:s + int(lens[i])])
             if wid is None:
                 return None
-            ids[i] = wid
-    return ids
+            cand[i] = wid
+    return cand
 
 
 class _TableBuilder:
@@ -311,6 +359,42 @@ def _open_binary(path: str) -> tuple[BinaryIO, int]:
     return raw, size
 
 
+def _prefetched(chunks: Iterator[bytes]) -> Iterator[bytes]:
+    """Runs `chunks` one piece ahead in a thread (file reads and zlib release the GIL)."""
+    q: queue.Queue = queue.Queue(maxsize=2)
+    stop = threading.Event()
+    done = object()
+
+    def produce() -> None:
+        try:
+            for c in chunks:
+                while not stop.is_set():
+                    try:
+                        q.put(c, timeout=0.1)
+                        break
+                    except queue.Full:
+                        continue
+                if stop.is_set():
+                    return
+            q.put((done, None))
+        except BaseException as err:  # handed to the consumer
+            q.put((done, err))
+
+    thread = threading.Thread(target=produce, daemon=True)
+    thread.start()
+    try:
+        while True:
+            item = q.get()
+            if isinstance(item, tuple):
+                if item[1] is not None:
+                    raise item[1]
+                return
+            yield item
+    finally:
+        stop.set()
+        thread.join()
+
+
 def _chunks(f: BinaryIO, path: str, problems: list[Problem]) -> Iterator[bytes]:
     """Yields pieces of the file that end at line ends (the last one ends with '\\n' too)."""
     rest = b""
@@ -351,6 +435,8 @@ class _ArpaReader:
         self.size_bound = 0
         self.trailing_text_line = 0
         self.saw_data = False
+        self.pool: concurrent.futures.ThreadPoolExecutor | None = None
+        self.pending: collections.deque = collections.deque()
 
     # -- problems
     def error(self, line: int | None, message: str, hint: str) -> None:
@@ -363,15 +449,24 @@ class _ArpaReader:
     # -- driver
     def run(self) -> ArpaModel:
         f, self.size_bound = _open_binary(self.path)
+        try:
+            return self._run(f)
+        finally:
+            self.pending.clear()
+            if self.pool is not None:
+                self.pool.shutdown(wait=True, cancel_futures=True)
+
+    def _run(self, f: BinaryIO) -> ArpaModel:
         nonblank = False
-        with f:
-            for chunk in _chunks(f, self.path, self.problems):
+        with f, contextlib.closing(_prefetched(_chunks(f, self.path, self.problems))) as it:
+            for chunk in it:
                 if not nonblank and chunk.strip():
                     nonblank = True
                 self._check_utf8(chunk)
                 self._chunk(chunk)
                 if self.state == "end":
                     break
+        self._drain()
         if not nonblank and self.line <= 1 and not self.problems:
             self.error(None, "the file is empty", "give an ARPA model (\\data\\, sections, \\end\\)")
             return self._finish()
@@ -433,6 +528,7 @@ class _ArpaReader:
 
     # -- headers and the \data\ section
     def _header(self, text: bytes, line: int) -> None:
+        self._drain()
         if text == b"\\data\\":
             if self.saw_data:
                 self.error(line, "a second \\data\\ section", "keep one \\data\\ section at the top")
@@ -518,6 +614,7 @@ class _ArpaReader:
     def _close_section(self) -> None:
         if self.state != "ngrams":
             return
+        self._drain()
         order = self.order
         count, line = self.declared[order]
         seen = self.seen_lines[order]
@@ -553,11 +650,33 @@ class _ArpaReader:
     def _ngrams(self, seg: bytes, first_line: int) -> None:
         order = self.order
         top = order == max(self.declared)
-        rows = _fast_rows(seg, order, top, self.vocab if order > 1 else None)
-        if rows is not None and order == 1:
-            spans, lp, bo, rel = rows
-            ids = self._add_words(seg, spans)
-            rows = None if ids is None else (ids, lp, bo, rel)
+        if order == 1:  # 1-grams define the words, in order: parsed here
+            rows = _fast_rows(seg, order, top, None)
+            if rows is not None:
+                spans, lp, bo, rel = rows
+                ids = self._add_words(seg, spans)
+                rows = None if ids is None else (ids, lp, bo, rel)
+            self._take_rows(rows, seg, first_line, order, top)
+            return
+        # Higher orders only read the vocabulary: pieces are parsed by worker threads
+        # (numpy releases the GIL) and their rows taken in file order.
+        if self.pool is None:
+            self.pool = concurrent.futures.ThreadPoolExecutor(_WORKERS)
+        self.vocab.index()
+        self.pending.append((self.pool.submit(_fast_rows, seg, order, top, self.vocab),
+                             seg, first_line, order, top))
+        while len(self.pending) > _WORKERS:
+            self._take_pending()
+
+    def _take_pending(self) -> None:
+        future, seg, first_line, order, top = self.pending.popleft()
+        self._take_rows(future.result(), seg, first_line, order, top)
+
+    def _drain(self) -> None:
+        while self.pending:
+            self._take_pending()
+
+    def _take_rows(self, rows, seg: bytes, first_line: int, order: int, top: bool) -> None:
         if rows is None:
             self._slow_rows(seg, first_line, order, top)
             return
@@ -677,19 +796,16 @@ class _ArpaReader:
         return model
 
 
-def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
-    """Vectorised parse of a piece of n-gram lines; None when anything is irregular.
-
-    Returns (word ids (k, order) or, for 1-grams, the (starts, lens) of the words,
-    logprob, backoff, relative line numbers of the rows).
-    """
-    padded = seg + b"\0" * 40
-    a = np.frombuffer(padded, np.uint8)
-    nw = np.zeros(len(seg) + 2, bool)
-    np.logical_not(_WS[a[: len(seg)]], out=nw[1:-1])
-    edges = np.flatnonzero(nw[1:] != nw[:-1])
-    starts, ends = edges[0::2], edges[1::2]
-    nl = np.flatnonzero(a[: len(seg)] == 10)
+def _line_counts(starts: np.ndarray, ends: np.ndarray, nl: np.ndarray, order: int,
+                 top: bool) -> tuple[np.ndarray, np.ndarray] | None:
+    """(non-blank line indices, tokens on each); None if a count is not a row's."""
+    ntok, nlines = len(starts), len(nl)
+    for t in ((order + 1,) if top else (order + 2, order + 1)):
+        # When every line holds t tokens, line j's tokens are t*j .. t*j + t - 1: it is
+        # enough that the first of them starts and the last ends on line j.
+        if ntok == t * nlines and nlines:
+            if (ends[t - 1::t] <= nl).all() and (starts[t::t] > nl[:-1]).all():
+                return np.arange(nlines), np.full(nlines, t)
     per_line = np.diff(np.searchsorted(starts, nl), prepend=0)
     filled = np.flatnonzero(per_line)
     c = per_line[filled]
@@ -698,6 +814,36 @@ def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
             return None
     elif not ((c == order + 1) | (c == order + 2)).all():
         return None
+    return filled, c
+
+
+def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
+    """Vectorised parse of a piece of n-gram lines; None when anything is irregular.
+
+    Returns (word ids (k, order) or, for 1-grams, the (starts, lens) of the words,
+    logprob, backoff, relative line numbers of the rows). Runs in worker threads: it
+    only reads `vocab`.
+    """
+    n = len(seg)
+    padded = seg + b"\0" * 40
+    a = np.frombuffer(padded, np.uint8)
+    nw = np.zeros(n + 2, bool)
+    body = a[:n]
+    control = np.subtract(body, 14, dtype=np.uint8) < 18  # bytes 14..31
+    control |= body < 9
+    if control.any():
+        np.logical_not(_WS[body], out=nw[1:-1])
+    else:
+        np.greater(body, 32, out=nw[1:-1])  # the only bytes <= 32 left are whitespace
+    del control
+    edges = np.flatnonzero(nw[1:] != nw[:-1])
+    del nw
+    starts, ends = edges[0::2], edges[1::2]
+    nl = np.flatnonzero(body == 10)
+    counted = _line_counts(starts, ends, nl, order, top)
+    if counted is None:
+        return None
+    filled, c = counted
     off = np.cumsum(c) - c
     lens = ends - starts
     win = _unaligned_u64(padded)
@@ -742,11 +888,17 @@ def _check_tables(model: ArpaModel, reader: _ArpaReader) -> None:
     radix = max(len(model.vocab), 1)
     index = model.word_index()
     bos, eos = index.get(SENTENCE_START), index.get(SENTENCE_END)
+    # order -> (codes in file order, the same sorted); kept for the hole check when
+    # the codes are plain radix numbers (no compaction), as prefixes are then code // radix
+    plain: dict[int, tuple[np.ndarray, np.ndarray]] = {}
     for t in model.orders[1:]:
         if len(t) == 0:
             continue
         (code,) = _row_codes([t.words], radix)
-        s = np.sort(code)
+        # ARPA files usually list n-grams in id order; then there is nothing to sort
+        s = code if (code[1:] >= code[:-1]).all() else np.sort(code)
+        if radix ** t.order < _HOLE_CAP:
+            plain[t.order] = (code, s)
         if (s[1:] == s[:-1]).any():
             order = np.argsort(code, kind="stable")
             sc = code[order]
@@ -759,8 +911,12 @@ def _check_tables(model: ArpaModel, reader: _ArpaReader) -> None:
     for lower, t in zip(model.orders, model.orders[1:]):
         if len(t) == 0 or t.order == 2:  # a 1-word history is a known word, hence listed
             continue
-        pre, low = _row_codes([t.words[:, :-1], lower.words], radix)
-        low_sorted = np.sort(low)
+        if t.order in plain and lower.order in plain:
+            pre = plain[t.order][0] // radix
+            low_sorted = plain[lower.order][1]
+        else:
+            pre, low = _row_codes([t.words[:, :-1], lower.words], radix)
+            low_sorted = np.sort(low)
         pos = np.minimum(np.searchsorted(low_sorted, pre), max(len(low_sorted) - 1, 0))
         missing = low_sorted[pos] != pre if len(low_sorted) else np.ones(len(pre), bool)
         k = int(missing.sum())

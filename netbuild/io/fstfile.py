@@ -294,7 +294,7 @@ def shared_conversions() -> Iterator[None]:
 
 
 def _fingerprint(fst: pynini.Fst | pywrapfst.Fst) -> tuple:
-    return (fst.num_states(), int(fst.properties(pywrapfst.FST_PROPERTIES, False)),
+    return (fst.num_states(), fst.properties(pywrapfst.FST_PROPERTIES, False),
             fst.start())
 
 

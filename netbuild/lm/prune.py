@@ -337,7 +337,8 @@ def prune_model(model: ArpaModel, threshold: float,
     """
     if not threshold >= 0.0:
         raise ProjectError(f"pruning threshold {threshold!r} is not a number >= 0",
-                           "give a threshold such as 1e-7 (0 keeps every n-gram)")
+                           "give a threshold such as 1e-7 (0 keeps every n-gram)",
+                           path="--threshold")
     crit = criteria if criteria is not None else pruning_criteria(model)
     n = model.max_order
     kept = [np.ones(len(t), bool) for t in model.orders]
