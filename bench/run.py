@@ -489,9 +489,10 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--only", nargs="*", default=kinds, choices=kinds)
     ap.add_argument("--full-datasets", nargs="*", default=["w5k_n200k", "w20k_n1m"],
                     choices=["w5k_n200k", "w20k_n1m"], help="data sets of fullgraph")
-    ap.add_argument("--all-variants", action="store_true",
-                    help="fullgraph: also checks off / final_optimize off on every set "
-                         "(by default only on w20k_n1m)")
+    ap.add_argument("--variants", nargs="*", default=["optimized", "fast", "unoptimized"],
+                    choices=["optimized", "fast", "unoptimized"],
+                    help="fullgraph: checks on (optimized), checks off (fast), "
+                         "final_optimize = false (unoptimized)")
     ap.add_argument("--datasets", nargs="*", default=list(DATASETS), choices=list(DATASETS),
                     help="models for arpa_g")
     ap.add_argument("--repeat", type=int, default=3)
@@ -515,7 +516,8 @@ def main(argv: list[str] | None = None) -> int:
         results = json.loads(Path(args.results).read_text())
         results.setdefault("machines", []).append(results.get("machine"))
         for kind in args.only:
-            results.pop(kind, None)
+            if kind not in ("fullgraph", "baseline_full"):  # these replace per label
+                results.pop(kind, None)
     results["machine"] = machine()
     if "baseline" in args.only:
         results["baseline"] = [measure("baseline", {}) for _ in range(args.repeat)]
@@ -546,12 +548,10 @@ def main(argv: list[str] | None = None) -> int:
     if "fullgraph" in args.only or "baseline_full" in args.only:
         for name in args.full_datasets:
             fdata = ensure_data(name, args.regenerate)
-            variants = [(True, True), (True, False), (False, True)] \
-                if "fullgraph" in args.only else []
+            named = {"optimized": (True, True), "fast": (True, False),
+                     "unoptimized": (False, True)}
+            variants = [named[v] for v in args.variants] if "fullgraph" in args.only else []
             for final_optimize, checks in variants:
-                if not args.all_variants and (final_optimize, checks) != (True, True) \
-                        and name != "w20k_n1m":
-                    continue
                 project = write_full_project(fdata, final_optimize, checks)
                 label = (f"{name} final_optimize={'on' if final_optimize else 'off'} "
                          f"checks={'on' if checks else 'off'}")

@@ -482,6 +482,9 @@ def build_grammar(model: ArpaModel) -> GrammarResult:
         weights.append((-LN10 * (level.alpha[ids] + folded)).astype(np.float32))
         dsts.append(dest.astype(np.int32))
 
+    # Drop the loops' last temporaries: `level` would keep a whole level of `hist`
+    # alive through the FST construction, which is where the memory peaks.
+    level = ids = rows = dest = folded = words = logprob = last = ends = None
     num_states, start, filled = hist.num_states, hist.start, hist.filled
     del hist
     src = np.concatenate(srcs).astype(np.int32)

@@ -29,6 +29,7 @@ import os
 import collections
 import concurrent.futures
 import contextlib
+import ctypes
 import queue
 import re
 import threading
@@ -310,20 +311,29 @@ def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray
 
 
 class _TableBuilder:
-    """Accumulates the rows of one order in preallocated numpy arrays."""
+    """Accumulates the rows of one order in preallocated numpy arrays.
 
-    def __init__(self, order: int, capacity: int) -> None:
+    For the highest order (`top`), whose back-off weights are all 0, the back-off
+    array is left as allocated by `np.zeros`: its pages stay untouched (they cost no
+    resident memory until something writes to them).
+    """
+
+    def __init__(self, order: int, capacity: int, top: bool = False) -> None:
         self.order = order
+        self.top = top
         self.n = 0
         self._alloc(max(capacity, 16))
 
     def _alloc(self, cap: int) -> None:
         old = getattr(self, "words", None)
         words = np.empty((cap, self.order), np.int32)
-        lp, bo, ln = np.empty(cap), np.empty(cap), np.empty(cap, np.int64)
+        lp, ln = np.empty(cap), np.empty(cap, np.int64)
+        bo = np.zeros(cap) if self.top else np.empty(cap)
         if old is not None:
             words[: self.n] = old[: self.n]
-            lp[: self.n], bo[: self.n] = self.logprob[: self.n], self.backoff[: self.n]
+            lp[: self.n] = self.logprob[: self.n]
+            if not self.top or np.any(self.backoff[: self.n]):
+                bo[: self.n] = self.backoff[: self.n]
             ln[: self.n] = self.lines[: self.n]
         self.words, self.logprob, self.backoff, self.lines = words, lp, bo, ln
 
@@ -332,16 +342,19 @@ class _TableBuilder:
         if self.n + k > len(self.logprob):
             self._alloc(max(int(len(self.logprob) * 1.5), self.n + k))
         sl = slice(self.n, self.n + k)
-        self.words[sl], self.logprob[sl], self.backoff[sl], self.lines[sl] = (
-            words, logprob, backoff, lines)
+        self.words[sl], self.logprob[sl], self.lines[sl] = words, logprob, lines
+        if not self.top or np.any(backoff):  # (the highest order has none)
+            self.backoff[sl] = backoff
         self.n += k
 
     def table(self) -> NgramTable:
         n = self.n
         if n == len(self.logprob):
             return NgramTable(self.order, self.words, self.logprob, self.backoff, self.lines)
+        backoff = (np.zeros(n) if self.top and not np.any(self.backoff[:n])
+                   else self.backoff[:n].copy())
         return NgramTable(self.order, self.words[:n].copy(), self.logprob[:n].copy(),
-                          self.backoff[:n].copy(), self.lines[:n].copy())
+                          backoff, self.lines[:n].copy())
 
 
 def _open_binary(path: str) -> tuple[BinaryIO, int]:
@@ -357,6 +370,19 @@ def _open_binary(path: str) -> tuple[BinaryIO, int]:
     if magic == b"\x1f\x8b":
         return gzip.GzipFile(fileobj=raw, mode="rb"), size * 1100  # deflate's ratio is < 1032
     return raw, size
+
+
+def _release_free_memory() -> None:
+    """Returns freed heap memory to the system (glibc only; a no-op elsewhere).
+
+    The worker threads allocate from their own malloc arenas; what they freed would
+    otherwise stay resident and unusable for the caller's next large arrays.
+    """
+    try:
+        trim = ctypes.CDLL(None).malloc_trim
+    except (OSError, AttributeError):
+        return
+    trim(0)
 
 
 def _prefetched(chunks: Iterator[bytes]) -> Iterator[bytes]:
@@ -455,6 +481,7 @@ class _ArpaReader:
             self.pending.clear()
             if self.pool is not None:
                 self.pool.shutdown(wait=True, cancel_futures=True)
+                _release_free_memory()
 
     def _run(self, f: BinaryIO) -> ArpaModel:
         nonblank = False
@@ -582,7 +609,7 @@ class _ArpaReader:
         count = self.declared[order][0]
         per_line = 2 * (order + 1)
         cap = min(count, self.size_bound // per_line + 1)
-        self.builders[order] = _TableBuilder(order, cap)
+        self.builders[order] = _TableBuilder(order, cap, top=order == max(self.declared))
         self.seen_lines[order] = 0
         self.order = order
         self.state = "ngrams"

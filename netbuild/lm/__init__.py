@@ -1,1 +1,1 @@
-"""Language-model utilities: estimation from text (and, later, pruning)."""
+"""Language-model utilities: estimation from text, relative-entropy pruning, perplexity."""

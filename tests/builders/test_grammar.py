@@ -196,3 +196,32 @@ def test_unk_and_fail_policy_errors():
         restrict_vocabulary(m, {"cable"}, "fail")
     with pytest.raises(InputError, match="policy 'keep' is unknown"):
         restrict_vocabulary(m, {"cable"}, "keep")  # type: ignore[arg-type]
+
+
+def test_row_order_does_not_change_g():
+    # Sorted tables take the no-sort paths, shuffled ones the sorting paths: same G.
+    rng = np.random.default_rng(7)
+    vocab = ["</s>", "<s>"] + [f"w{i}" for i in range(30)]
+    v = len(vocab)
+
+    def table(n, k):
+        rows = np.unique(rng.integers(0, v, size=(k, n)), axis=0).astype(np.int32)
+        rows = rows[(rows[:, -1] != 1) & (rows[:, :-1] != 0).all(1)]
+        lp = -rng.random(len(rows)) * 3
+        bo = -rng.random(len(rows)) if n < 3 else np.zeros(len(rows))
+        return NgramTable(n, rows, lp, bo, np.arange(len(rows), dtype=np.int64))
+
+    uni = NgramTable(1, np.arange(v, dtype=np.int32)[:, None], -rng.random(v) * 3,
+                     -rng.random(v), np.arange(v, dtype=np.int64))
+    sorted_model = ArpaModel(vocab, [uni, table(2, 300), table(3, 600)])
+    shuffled = []
+    for t in sorted_model.orders:
+        p = rng.permutation(len(t))
+        shuffled.append(NgramTable(t.order, t.words[p], t.logprob[p], t.backoff[p],
+                                   t.lines[p]))
+    a = fst_to_arrays(build_grammar(sorted_model).fst)
+    b = fst_to_arrays(build_grammar(ArpaModel(vocab, shuffled)).fst)
+    assert a.num_arcs > 500 and a.num_states > 100
+    for name in ("src", "ilabel", "olabel", "weight", "dst", "final_weights"):
+        assert np.array_equal(getattr(a, name), getattr(b, name)), name
+    assert (a.start, a.num_states) == (b.start, b.num_states)

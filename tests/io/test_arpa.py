@@ -216,3 +216,40 @@ def test_large_file_crosses_chunks(tmp_path, monkeypatch):
     with pytest.raises(ArpaError) as info:
         read_arpa(write(tmp_path, bad))
     assert info.value.problems[0].line == 308 + 250
+
+
+def test_control_bytes_stay_inside_words(tmp_path):
+    # bytes.split() (the line-by-line reader's rule) splits on ASCII whitespace only, so
+    # a control byte such as \x1f is part of a word in both readers.
+    text = ("\\data\\\nngram 1=3\nngram 2=1\n\n\\1-grams:\n-1.0\t</s>\n-1.0\t<s>\t-0.5\n"
+            "-0.5\ta\x1fb\n\n\\2-grams:\n-0.2\t<s> a\x1fb\n\n\\end\\\n")
+    m = read_arpa(write(tmp_path, text))
+    assert m.vocab == ["</s>", "<s>", "a\x1fb"]
+    assert m.orders[1].words.tolist() == [[1, 2]]
+
+
+def test_highest_order_backoff_is_zero_and_writable(tmp_path):
+    m = read_arpa(write(tmp_path, GOOD))
+    top = m.orders[-1]
+    assert top.backoff.tolist() == [0.0] * len(top)
+    top.backoff[:] = 0.0  # an ordinary array, not a read-only view
+
+
+def test_many_pieces_keep_file_order_and_report_all_errors(tmp_path, monkeypatch):
+    import netbuild.io.arpa as arpa
+
+    monkeypatch.setattr(arpa, "_CHUNK", 64)  # pieces go through the worker threads
+    words = [f"w{i}" for i in range(40)]
+    uni = [f"-1.5\t{w}\t-0.25" for w in words]
+    bi = [f"-0.{i % 9 + 1}\t{words[i]} {words[(i * 3) % 40]}" for i in range(40)]
+    lines = ["\\data\\", "ngram 1=40", "ngram 2=40", "", "\\1-grams:", *uni, "",
+             "\\2-grams:", *bi, "", "\\end\\", ""]
+    m = read_arpa(write(tmp_path, "\n".join(lines)))
+    assert m.orders[1].lines.tolist() == list(range(48, 88))
+    assert m.orders[1].words[:, 1].tolist() == [(i * 3) % 40 for i in range(40)]
+    bad = list(lines)
+    bad[47 + 5] = "-0.5\tw5 nosuch"
+    bad[47 + 30] = "oops\tw1 w2"
+    with pytest.raises(ArpaError) as info:
+        read_arpa(write(tmp_path, "\n".join(bad)))
+    assert [p.line for p in info.value.problems] == [53, 78]

@@ -121,3 +121,35 @@ def test_single_corruption_is_located(tmp_path_factory, kind, i, which):
         assert str(err.problems[0]).startswith(f"{path}:{expected}: ")
     else:
         raise AssertionError(f"{kind} corruption at line {i + 1} was not reported")
+
+
+# Decimal tokens as ARPA writers print them, and the odd ones the fast parser must hand
+# on to float(): exponents, more than 15 digits, lone signs and dots.
+DECIMAL = st.one_of(
+    st.builds(lambda v, d: f"{v:.{d}f}", st.floats(-1e6, 1e6, allow_nan=False),
+              st.integers(0, 15)),
+    st.floats(-1e6, 1e6, allow_nan=False).map(repr),
+    st.from_regex(r"\A[+-]?[0-9]{0,17}\.?[0-9]{0,17}\Z").filter(
+        lambda s: any(c.isdigit() for c in s)),
+    st.sampled_from(["-0", "-0.0", "+.5", "5.", "-99", "1e5", "-1.5E-3", "0.000000000000001"]),
+)
+
+
+@given(st.lists(DECIMAL, min_size=1, max_size=40))
+def test_vectorised_numbers_equal_float(tokens):
+    # reference: Python's float() (correctly rounded decimal-to-double conversion)
+    import netbuild.io.arpa as arpa
+
+    seg = (" ".join(tokens) + "\n").encode()
+    padded = seg + b"\0" * 40
+    starts, pos = [], 0
+    for t in tokens:
+        starts.append(pos)
+        pos += len(t) + 1
+    starts = np.array(starts, np.int64)
+    lens = np.array([len(t) for t in tokens], np.int64)
+    values = arpa._parse_numbers(arpa._unaligned_u64(padded), starts, lens, seg)
+    expected = [float(t) for t in tokens]
+    assert values is not None
+    assert values.tolist() == expected
+    assert np.signbit(values).tolist() == [np.signbit(x) for x in expected]
