@@ -387,6 +387,54 @@ class _Histories:
         return dest, folded
 
 
+def _merge_arcs(num_states: int, radix: int, srcs: list, labels: list, weights: list,
+                dsts: list) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Merges the arc parts into one arc list grouped by state, sorted by label.
+
+    Each state's arcs come from a few parts, and a part's arcs of one state have labels
+    below those of the next part's (word arcs of one order, then back-off arcs, whose
+    label is the largest). So every part, once sorted by (state, label) -- which it
+    already is when the model lists its n-grams in id order -- is scattered straight to
+    its final positions: no sort of all arcs. The lists are emptied as parts are used.
+    """
+    per_state = np.zeros(num_states, dtype=np.int64)
+    for part in srcs:
+        per_state += np.bincount(part, minlength=num_states)
+    offset = np.zeros(num_states + 1, dtype=np.int64)
+    np.cumsum(per_state, out=offset[1:])
+    total = int(offset[-1])
+    del per_state
+    out_src = np.empty(total, dtype=np.int32)
+    out_label = np.empty(total, dtype=np.int32)
+    out_weight = np.empty(total, dtype=np.float32)
+    out_dst = np.empty(total, dtype=np.int32)
+    fill = offset[:-1].copy()
+    while srcs:
+        src, label, weight, dst = srcs.pop(0), labels.pop(0), weights.pop(0), dsts.pop(0)
+        n = src.shape[0]
+        if n == 0:
+            continue
+        key = src.astype(np.int64) * radix + label
+        if not _is_sorted(key):
+            order = _sort_order(key)
+            src, label, weight, dst = src[order], label[order], weight[order], dst[order]
+            del order
+        del key
+        # rank of each arc among its state's arcs in this part
+        first = np.empty(n, dtype=bool)
+        first[0] = True
+        np.not_equal(src[1:], src[:-1], out=first[1:])
+        group_start = np.flatnonzero(first)
+        rank = np.arange(n, dtype=np.int64)
+        rank -= np.repeat(group_start, np.diff(np.append(group_start, n)))
+        pos = fill[src] + rank
+        del rank, first, group_start
+        out_src[pos], out_label[pos], out_weight[pos], out_dst[pos] = src, label, weight, dst
+        fill += np.bincount(src, minlength=num_states)
+        del pos, src, label, weight, dst
+    return out_src, out_label, out_weight, out_dst
+
+
 def build_grammar(model: ArpaModel) -> GrammarResult:
     """Builds the grammar transducer G from a back-off model, in bulk.
 
@@ -487,17 +535,8 @@ def build_grammar(model: ArpaModel) -> GrammarResult:
     level = ids = rows = dest = folded = words = logprob = last = ends = None
     num_states, start, filled = hist.num_states, hist.start, hist.filled
     del hist
-    src = np.concatenate(srcs).astype(np.int32)
-    del srcs
-    ilabel = np.concatenate(labels)
-    del labels
-    # (state, label) pairs are unique, so any sort order of the pairs groups and sorts.
-    order = _sort_order(src.astype(np.int64) * (backoff_label + 1) + ilabel)
-    src, ilabel = src[order], ilabel[order]
-    weight = np.concatenate(weights)[order].astype(np.float32)
-    del weights
-    dst = np.concatenate(dsts)[order].astype(np.int32)
-    del dsts, order
+    src, ilabel, weight, dst = _merge_arcs(num_states, backoff_label + 1,
+                                           srcs, labels, weights, dsts)
     olabel = np.where(ilabel == backoff_label, 0, ilabel).astype(np.int32)
     symbols = word_symbol_table(model)
     fst = arrays_to_fst(num_states, start, final, src, ilabel, olabel, weight, dst,

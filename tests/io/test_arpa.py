@@ -253,3 +253,16 @@ def test_many_pieces_keep_file_order_and_report_all_errors(tmp_path, monkeypatch
     with pytest.raises(ArpaError) as info:
         read_arpa(write(tmp_path, "\n".join(bad)))
     assert [p.line for p in info.value.problems] == [53, 78]
+
+
+def test_reader_stops_cleanly_after_end_with_chunks_pending(tmp_path, monkeypatch):
+    import threading
+
+    import netbuild.io.arpa as arpa
+
+    monkeypatch.setattr(arpa, "_CHUNK", 32)  # many chunks still queued after \end\
+    text = GOOD + "".join(f"trailing text {i}\n" for i in range(200))
+    before = threading.active_count()
+    m = read_arpa(write(tmp_path, text))
+    assert m.counts() == [4, 3]
+    assert threading.active_count() == before  # the read-ahead thread has ended
