@@ -43,6 +43,8 @@ Usage::
 
     python bench/run.py                      # everything
     python bench/run.py --only arpa_g --repeat 3
+    python bench/run.py --only fullgraph --full-datasets w20k_n1m --variants optimized
+    python bench/run.py --only baseline_full --full-datasets w20k_n1m
 """
 
 from __future__ import annotations
@@ -493,7 +495,8 @@ def main(argv: list[str] | None = None) -> int:
                     choices=["optimized", "fast", "unoptimized"],
                     help="fullgraph: checks on (optimized), checks off (fast), "
                          "final_optimize = false (unoptimized)")
-    ap.add_argument("--datasets", nargs="*", default=list(DATASETS), choices=list(DATASETS),
+    ap.add_argument("--datasets", nargs="*", default=["w20k_n1m", "w20k_n5m"],
+                    choices=list(DATASETS),
                     help="models for arpa_g")
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--regenerate", action="store_true", help="regenerate the inputs")
