@@ -125,14 +125,14 @@ def straightforward_graph(data_dir: str | Path) -> dict:
         t = time.perf_counter()  # counting arcs is not part of the step
 
     inputs = read_inputs(project, Diagnostics())
-    g = build_grammar(inputs.model)
-    lex = build_lexicon(inputs.lexicon, inputs.inventory, g.word_symbols,
+    grammar = build_grammar(inputs.model)
+    lex = build_lexicon(inputs.lexicon, inputs.inventory, grammar.word_symbols,
                         project.options.lexicon)
     models = make_model_symbols(inputs.cmap, lex.phone_symbols)
     cfst = build_context(context_windows(inputs), inputs.cmap, lex.phone_symbols, models)
     hfst, kinds = build_hmm(inputs.cmap, models)
-    step("inputs (read, G, L, C, H)", g.fst)
-    lg = pynini.compose(pynini.arcsort(lex.fst, sort_type="olabel"), g.fst)
+    step("inputs (read, G, L, C, H)", grammar.fst)
+    lg = pynini.compose(pynini.arcsort(lex.fst, sort_type="olabel"), grammar.fst)
     step("compose L∘G", lg)
     lg = pynini.determinize(lg)
     step("determinize LG", lg)
@@ -157,7 +157,7 @@ def straightforward_graph(data_dir: str | Path) -> dict:
     return {"steps": steps, "seconds": total, "wall_seconds": time.perf_counter() - t0,
             "peak_rss": max(s["peak_rss_bytes"] for s in steps),
             "final_states": graph.num_states(), "final_arcs": _arcs(graph),
-            "vector_bytes": out.stat().st_size, "g_arcs": _arcs(g.fst)}
+            "vector_bytes": out.stat().st_size, "g_arcs": _arcs(grammar.fst)}
 
 
 if __name__ == "__main__":

@@ -50,8 +50,8 @@ def _networkx_cycle(fst) -> list[int]:
 
 
 def main() -> None:
-    g = build_grammar(read_arpa(HERE / "out" / "w20k_n1m" / "model.arpa"))
-    ctx = chk.CheckContext("probe", g.word_symbols, g.word_symbols)
+    grammar = build_grammar(read_arpa(HERE / "out" / "w20k_n1m" / "model.arpa"))
+    ctx = chk.CheckContext("probe", grammar.word_symbols, grammar.word_symbols)
     rng = np.random.default_rng(0)
     n, m = 1_000_000, 2_000_000
     src = rng.integers(0, n - 1, m)
@@ -68,10 +68,10 @@ def main() -> None:
 
     def shared() -> None:
         with shared_conversions():
-            _stage_checks(g.fst, ctx)
+            _stage_checks(grammar.fst, ctx)
 
     for _ in range(2):
-        timed("checks, one conversion each", lambda: _stage_checks(g.fst, ctx))
+        timed("checks, one conversion each", lambda: _stage_checks(grammar.fst, ctx))
         timed("checks, shared conversion", shared)
         timed("eps cycle, networkx", lambda: _networkx_cycle(dag))
         timed("eps cycle, OpenFst property", lambda: chk.has_input_epsilon_cycle(dag))

@@ -24,13 +24,13 @@ from netbuild import pipeline as pl
 
 data = Path(__file__).resolve().parent / "out" / "w20k_n1m"
 opts = BuildOptions(lexicon=LexiconOptions(has_probabilities=True), checks=False)
-inv = read_phones(data / "phones.txt")
+inv = read_phones(data / "inventory.txt")
 lex = read_lexicon(data / "lexicon.txt", inv, opts.lexicon)
-g = build_grammar(read_arpa(data / "model.arpa"))
-L = build_lexicon(lex, inv, g.word_symbols, opts.lexicon)
+grammar = build_grammar(read_arpa(data / "model.arpa"))
+lexicon_result = build_lexicon(lex, inv, grammar.word_symbols, opts.lexicon)
 out = {}
 t = time.perf_counter()
-c = pl.compose_stage(L.fst, g.fst)
+c = pl.compose_stage(lexicon_result.fst, grammar.fst)
 out["compose"] = time.perf_counter() - t
 t = time.perf_counter()
 d = pl.determinize_stage(c, opts)

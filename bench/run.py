@@ -164,7 +164,7 @@ def _child_wordgraph(params: dict) -> dict:
         return time.perf_counter()
 
     t_begin = t = time.perf_counter()
-    inventory = read_phones(data / "phones.txt")
+    inventory = read_phones(data / "inventory.txt")
     lexicon = read_lexicon(data / "lexicon.txt", inventory, opts.lexicon)
     t = step("read lexicon", t)
     model = read_arpa(data / "model.arpa")
@@ -313,12 +313,12 @@ def write_full_project(data: Path, final_optimize: bool = True, checks: bool = T
     from synth import write_phones
     from synth_context import write_context_map_text
 
-    write_phones(data / "phones.txt")  # the tying rules need its group classes
+    write_phones(data / "inventory.txt")  # the tying rules need its group classes
     write_context_map_text(data / "context.txt")
     name = f"project_full{'' if final_optimize else '_noopt'}{'' if checks else '_fast'}"
     path = data / f"{name}.toml"
     path.write_text('[inputs]\nlexicon = "lexicon.txt"\nlm = "model.arpa"\n'
-                    'phones = "phones.txt"\ncontext = "context.txt"\n\n'
+                    'phones = "inventory.txt"\ncontext = "context.txt"\n\n'
                     '[lexicon]\nprobabilities = true\n\n[build]\n'
                     f'final_optimize = {str(final_optimize).lower()}\n'
                     f'checks = {str(checks).lower()}\n', encoding="utf-8")
@@ -329,7 +329,7 @@ def write_project(data: Path) -> Path:
     """Writes a project file for dataset directory `data`; returns its path."""
     path = data / "project.toml"
     path.write_text('[inputs]\nlexicon = "lexicon.txt"\nlm = "model.arpa"\n'
-                    'phones = "phones.txt"\n\n[lexicon]\nprobabilities = true\n',
+                    'phones = "inventory.txt"\n\n[lexicon]\nprobabilities = true\n',
                     encoding="utf-8")
     return path
 

@@ -606,7 +606,7 @@ def write_arpa_text(model: ArpaModel, path: str | Path, chunk: int = 500_000) ->
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Writes phones.txt, lexicon.txt, model.arpa[.gz] and synth.json into --out."""
+    """Writes inventory.txt, lexicon.txt, model.arpa[.gz] and synth.json into --out."""
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--words", type=int, required=True, help="vocabulary size")
     ap.add_argument("--ngrams", type=int, required=True, help="total n-gram count")
@@ -646,7 +646,7 @@ def main(argv: list[str] | None = None) -> int:
         lex = synth_lexicon(args.words, seed=args.seed + 1, homophone_share=args.homophones,
                             prefix_share=args.prefixes, variant_share=variants)
         write_lexicon(lex, out / "lexicon.txt", probabilities=not args.no_probabilities)
-        write_phones(out / "phones.txt")
+        write_phones(out / "inventory.txt")
         report["lexicon"] = {"path": "lexicon.txt", "words": len(lex.words),
                              "pronunciations": len(lex.entries),
                              "homophone_words": len(lex.homophone_words),

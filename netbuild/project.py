@@ -15,7 +15,7 @@ Relative paths are taken relative to the directory holding the project file::
     [inputs]
     lexicon = "words.lex"        # pronunciation lexicon (string path)
     lm = "model.arpa"            # ARPA back-off language model, plain or .gz
-    phones = "phones.txt"        # phone inventory; when absent the phones are
+    phones = "inventory.txt"        # phone inventory; when absent the phones are
                                  # taken from the lexicon
     context = "context.txt"      # context map; when given the full graph (H∘C∘L∘G
                                  # over emission classes) is built, else L∘G

@@ -79,7 +79,7 @@ def test_lexicon_shares_and_reader(synth, tmp_path):
                               variant_share=0.05)
     path = tmp_path / "lexicon.txt"
     synth.write_lexicon(lex, path, probabilities=True)
-    synth.write_phones(tmp_path / "phones.txt")
+    synth.write_phones(tmp_path / "inventory.txt")
 
     # Independent count from the text: homophones share a phone string across words;
     # prefix words own a phone string that is a proper prefix of another entry's.
@@ -110,7 +110,7 @@ def test_lexicon_shares_and_reader(synth, tmp_path):
     if not hasattr(lexicon_io, "read_lexicon") or not hasattr(phones_io, "read_phones"):
         pytest.skip("the lexicon and phone readers are not in netbuild yet")
     diag = Diagnostics()
-    inventory = phones_io.read_phones(tmp_path / "phones.txt", diag)
+    inventory = phones_io.read_phones(tmp_path / "inventory.txt", diag)
     read = lexicon_io.read_lexicon(path, inventory, LexiconOptions(has_probabilities=True),
                                    diag)
     assert diag.errors == []
@@ -264,7 +264,7 @@ def test_fixed_point_formatting(synth):
 def test_cli_writes_all_files(synth, tmp_path):
     out = tmp_path / "set"
     assert synth.main(["--words", "40", "--ngrams", "500", "--out", str(out)]) == 0
-    assert {p.name for p in out.iterdir()} == {"lexicon.txt", "phones.txt", "model.arpa",
+    assert {p.name for p in out.iterdir()} == {"lexicon.txt", "inventory.txt", "model.arpa",
                                                "synth.json"}
     counts, _ = parse_arpa_text(out / "model.arpa")
     assert sum(counts.values()) == 500

@@ -44,7 +44,7 @@ def modules():
 def files(modules, tmp_path_factory):
     synth, synth_context = modules
     d = tmp_path_factory.mktemp("ctx")
-    synth.write_phones(d / "phones.txt")
+    synth.write_phones(d / "inventory.txt")
     synth.write_lexicon(synth.synth_lexicon(300, seed=3), d / "lexicon.txt")
     synth_context.write_context_map_text(d / "context.txt", seed=1)
     return d
@@ -53,7 +53,7 @@ def files(modules, tmp_path_factory):
 def test_reader_accepts_the_map_with_the_documented_counts(modules, files):
     synth, _ = modules
     diag = Diagnostics()
-    inventory = read_phones(files / "phones.txt", diag)
+    inventory = read_phones(files / "inventory.txt", diag)
     cmap = read_context_map(files / "context.txt", inventory, diag)
     assert not diag.errors
     assert (cmap.left, cmap.right) == (1, 1)
@@ -69,7 +69,7 @@ def test_reader_accepts_the_map_with_the_documented_counts(modules, files):
 
 def test_tying_shares_first_and_last_states_by_side(modules, files):
     diag = Diagnostics()
-    inventory = read_phones(files / "phones.txt", diag)
+    inventory = read_phones(files / "inventory.txt", diag)
     cmap = read_context_map(files / "context.txt", inventory, diag)
     m = cmap.models
     # Same centre and left side: same first state, different middle states.
@@ -86,7 +86,7 @@ def test_tying_shares_first_and_last_states_by_side(modules, files):
 
 def test_every_occurring_context_is_covered_by_a_group_rule(files):
     diag = Diagnostics()
-    inventory = read_phones(files / "phones.txt", diag)
+    inventory = read_phones(files / "inventory.txt", diag)
     cmap = read_context_map(files / "context.txt", inventory, diag)
     lexicon = read_lexicon(files / "lexicon.txt", inventory,
                            LexiconOptions(has_probabilities=True), diag)

@@ -78,7 +78,7 @@ def test_check_clean_json(runner):
 
 def test_check_flags_without_project(runner):
     result = run(runner, "check", "--lexicon", DATA / "lexicon.txt", "--lm",
-                 DATA / "model.arpa", "--phones", DATA / "phones.txt", "--oov-policy", "fail")
+                 DATA / "model.arpa", "--phones", DATA / "inventory.txt", "--oov-policy", "fail")
     assert result.exit_code == 1
     assert "'is'" in result.stdout and ": warning:" not in result.stdout
 

@@ -87,7 +87,7 @@ def _project(tmp_path: Path, lines: list[str]) -> tuple[Path, Path]:
     project = tmp_path / "project.toml"
     project.write_text(textwrap.dedent(f"""\
         [inputs]
-        phones = "{DATA / 'phones.txt'}"
+        phones = "{DATA / 'inventory.txt'}"
         lexicon = "{DATA / 'lexicon.txt'}"
         lm = "{DATA / 'bigram.arpa'}"
         context = "{cmap}"

@@ -30,8 +30,8 @@ ROOT = Path(__file__).resolve().parent.parent
 DOCS = ROOT / "docs"
 DEMO = ROOT / "examples" / "ropeway"
 KINDS = ("phones", "lexicon", "lexicon-probabilities", "lexicon-cmudict", "arpa", "project")
-FILE_NAMES = {"phones": "phones.txt", "lexicon": "words.txt",
-              "lexicon-probabilities": "words.txt", "lexicon-cmudict": "words.txt",
+FILE_NAMES = {"phones": "inventory.txt", "lexicon": "lexicon.txt",
+              "lexicon-probabilities": "lexicon.txt", "lexicon-cmudict": "lexicon.txt",
               "arpa": "model.arpa", "project": "project.toml"}
 
 _BLOCK = r"\s*```[a-z]*\n(.*?)```"
@@ -48,14 +48,14 @@ def _read(kind: str, directory: Path, text: str, diagnostics: Diagnostics):
     """Writes `text` as the file of `kind` in `directory` and reads it (relative path)."""
     name = FILE_NAMES[kind]
     if kind == "project":
-        for demo_input in ("phones.txt", "lexicon.txt", "model.arpa"):
+        for demo_input in ("inventory.txt", "lexicon.txt", "model.arpa"):
             shutil.copy(DEMO / demo_input, directory / demo_input)
     (directory / name).write_text(text, encoding="utf-8")
     if kind == "phones":
         return read_phones(name, diagnostics)
     if kind.startswith("lexicon"):
-        shutil.copy(DEMO / "phones.txt", directory / "phones.txt")
-        inventory = read_phones("phones.txt")
+        shutil.copy(DEMO / "inventory.txt", directory / "inventory.txt")
+        inventory = read_phones("inventory.txt")
         options = LexiconOptions(layout="cmudict" if kind == "lexicon-cmudict" else "plain",
                                  has_probabilities=kind == "lexicon-probabilities")
         return read_lexicon(name, inventory, options, diagnostics)

@@ -45,7 +45,7 @@ def _lexicon_options() -> LexiconOptions:
 
 @pytest.fixture(scope="module")
 def lexicon() -> Lexicon:
-    inventory = read_phones(DEMO / "phones.txt")
+    inventory = read_phones(DEMO / "inventory.txt")
     return read_lexicon(DEMO / "lexicon.txt", inventory, _lexicon_options())
 
 
@@ -63,7 +63,7 @@ def _load_generator():
 
 def test_phones_read_without_any_problem():
     diagnostics = Diagnostics()
-    inventory = read_phones(DEMO / "phones.txt", diagnostics)
+    inventory = read_phones(DEMO / "inventory.txt", diagnostics)
     assert diagnostics.problems == []
     assert 35 <= len(inventory.phones) <= 40
     assert inventory.optional_silence == "quiet"
@@ -76,7 +76,7 @@ def test_phones_read_without_any_problem():
 
 def test_lexicon_reads_without_any_problem():
     diagnostics = Diagnostics()
-    inventory = read_phones(DEMO / "phones.txt", diagnostics)
+    inventory = read_phones(DEMO / "inventory.txt", diagnostics)
     lex = read_lexicon(DEMO / "lexicon.txt", inventory, _lexicon_options(), diagnostics)
     assert diagnostics.problems == []
     assert 280 <= len(lex.words()) <= 400
@@ -103,7 +103,7 @@ def test_project_file_names_the_demo_inputs():
     diagnostics = Diagnostics()
     project = read_project(DEMO / "project.toml", diagnostics)
     assert diagnostics.problems == []
-    assert project.phones == (DEMO / "phones.txt").resolve()
+    assert project.phones == (DEMO / "inventory.txt").resolve()
     assert project.lexicon == (DEMO / "lexicon.txt").resolve()
     assert project.lm == (DEMO / "model.arpa").resolve()
     # the lexicon options the tests above assume are the ones the project declares

@@ -25,7 +25,7 @@ def _project(ctx: str = "triphone.ctx", lm: str = "bigram.arpa", **options) -> P
     opts = dataclasses.replace(opts, lexicon=dataclasses.replace(
         opts.lexicon, has_probabilities=True, silence_probability=0.3))
     return Project(path=None, lexicon=DATA / "lexicon.txt", lm=DATA / lm,
-                   phones=DATA / "phones.txt", options=opts, context=DATA / ctx)
+                   phones=DATA / "inventory.txt", options=opts, context=DATA / ctx)
 
 
 def _build(tmp_path, name="out", **kw):

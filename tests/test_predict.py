@@ -161,9 +161,9 @@ def test_synthetic_prediction_contains_the_true_size(tmp_path):
     synth.write_arpa_text(synth.synth_arpa(600, 30_000, order=3, seed=3),
                           tmp_path / "model.arpa")
     synth.write_lexicon(synth.synth_lexicon(600, seed=4), tmp_path / "lexicon.txt")
-    synth.write_phones(tmp_path / "phones.txt")
+    synth.write_phones(tmp_path / "inventory.txt")
     (tmp_path / "project.toml").write_text(
-        '[inputs]\nlexicon = "lexicon.txt"\nlm = "model.arpa"\nphones = "phones.txt"\n'
+        '[inputs]\nlexicon = "lexicon.txt"\nlm = "model.arpa"\nphones = "inventory.txt"\n'
         '[lexicon]\nprobabilities = true\n', encoding="utf-8")
     project = read_project(tmp_path / "project.toml")
     prediction = predict_graph_size(project)

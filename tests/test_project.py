@@ -16,7 +16,7 @@ from netbuild.project import (SETTINGS, Project, apply_overrides, parse_size,
 def inputs(tmp_path: Path) -> Path:
     (tmp_path / "words.lex").write_text("pear p e r\n")
     (tmp_path / "model.arpa").write_text("\\data\\\n")
-    (tmp_path / "phones.txt").write_text("p\ne\nr\n")
+    (tmp_path / "inventory.txt").write_text("p\ne\nr\n")
     return tmp_path
 
 
@@ -63,7 +63,7 @@ def test_read_full_project(inputs: Path):
 [inputs]
 lexicon = "words.lex"
 lm = "model.arpa"
-phones = "phones.txt"
+phones = "inventory.txt"
 
 [lexicon]
 layout = "cmudict"
@@ -86,7 +86,7 @@ determinize_timeout = 60
     assert project.path == p.resolve()
     assert project.lexicon == (inputs / "words.lex").resolve()
     assert project.lm == (inputs / "model.arpa").resolve()
-    assert project.phones == (inputs / "phones.txt").resolve()
+    assert project.phones == (inputs / "inventory.txt").resolve()
     o = project.options
     assert o.lexicon.layout == "cmudict"
     assert o.lexicon.has_probabilities is True
@@ -202,14 +202,14 @@ def test_overrides_win_over_file(inputs: Path, monkeypatch):
     project = read_project(p)
     monkeypatch.chdir(inputs)
     out = apply_overrides(project, fst_type="vector", push_weights=False, oov_policy=None,
-                          determinize_max_memory="1.5GB", phones="phones.txt",
+                          determinize_max_memory="1.5GB", phones="inventory.txt",
                           silence_probability=0.0)
     assert out.options.fst_type == "vector"
     assert out.options.push_weights is False
     assert out.options.grammar.oov_policy == "drop"  # None keeps the file's value
     assert out.options.determinize_max_memory == 1_500_000_000
     assert out.options.lexicon.silence_probability == 0.0
-    assert out.phones == (inputs / "phones.txt").resolve()
+    assert out.phones == (inputs / "inventory.txt").resolve()
     assert out.lexicon == project.lexicon
     assert project.options.fst_type == "const"  # the input is not changed
 

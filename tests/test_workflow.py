@@ -66,7 +66,7 @@ def test_clean_inputs_have_only_the_oov_warning():
 def test_missing_pronunciations_skip_sentence_markers():
     model = read_arpa(DATA / "model.arpa")
     from netbuild.io.lexicon import read_lexicon
-    lexicon = read_lexicon(DATA / "lexicon.txt", read_phones(DATA / "phones.txt"))
+    lexicon = read_lexicon(DATA / "lexicon.txt", read_phones(DATA / "inventory.txt"))
     assert missing_pronunciations(model, lexicon) == ["is"]
     assert SENTENCE_START in model.vocab and SENTENCE_END in model.vocab
 
@@ -88,12 +88,12 @@ def test_problems_of_two_files_in_one_run(data: Path):
 
 
 def test_broken_inventory_still_checks_the_other_files(data: Path):
-    (data / "phones.txt").write_text("p\np\n")
+    (data / "inventory.txt").write_text("p\np\n")
     arpa = data / "model.arpa"
     arpa.write_text(arpa.read_text().replace("ngram 1=18", "ngram 1=19"))
     diag = check_inputs(read_project(data / "project.toml"))
     files = {p.path for p in diag.errors}
-    assert {str(data / "phones.txt"), str(arpa)} <= files
+    assert {str(data / "inventory.txt"), str(arpa)} <= files
 
 
 @pytest.mark.parametrize("policy, unk, severity", [
@@ -225,7 +225,7 @@ def test_build_writes_directory_and_manifest(first_build):
         assert {"name", "states", "arcs", "seconds", "peak_rss_bytes"} <= set(s)
         assert s["states"] > 0 and s["arcs"] > 0 and s["peak_rss_bytes"] > 0
     for key, name in (("lexicon", "lexicon.txt"), ("lm", "model.arpa"),
-                      ("phones", "phones.txt")):
+                      ("phones", "inventory.txt")):
         rec = manifest["inputs"][key]
         assert rec["path"] == str(DATA / name)
         # reference: FIPS 180-4 SHA-256, via hashlib
@@ -243,7 +243,7 @@ def test_build_symbol_tables_follow_the_layout(first_build):
     words = [loaded.word_symbols.find(i) for i in range(loaded.word_symbols.num_symbols())]
     expected = [w for w in model.vocab if w not in (SENTENCE_START, SENTENCE_END, "is")]
     assert words == ["<epsilon>", *expected, BACKOFF]
-    inventory = read_phones(DATA / "phones.txt")
+    inventory = read_phones(DATA / "inventory.txt")
     k = result.manifest["markers"]["count"]
     phones = [loaded.input_symbols.find(i) for i in range(loaded.input_symbols.num_symbols())]
     markers = [disambiguation_marker(j) for j in range(1, k + 1)]

@@ -249,7 +249,7 @@ def test_shadowed_rule_is_named_as_such():
 
 
 def test_demo_map_covers_the_demo_lexicon():
-    inv = read_phones(ROPEWAY / "phones.txt")
+    inv = read_phones(ROPEWAY / "inventory.txt")
     opts = LexiconOptions(has_probabilities=True, silence_probability=0.5)
     lex = read_lexicon(ROPEWAY / "lexicon.txt", inv, opts)
     cmap = read_context_map(ROPEWAY / "context.txt", inv)

@@ -228,12 +228,12 @@ def costs_for(fst: pynini.Fst, labels: list[int]) -> float:
 
 def test_state_entered_by_two_kinds_and_epsilon_is_copied_twice():
     kinds = _kinds([(0, 0.5, 0.5), (1, 0.5, 0.5)])
-    # 0 -k1-> 3, 1 -k2-> 3, 2 -eps-> 3; 0 -eps-> 1, 0 -eps-> 2
+    # 0 -kind1-> 3, 1 -kind2-> 3, 2 -eps-> 3; 0 -eps-> 1, 0 -eps-> 2
     fst = arrays_to_fst(4, 0, [np.inf, np.inf, np.inf, 0.0],
                         [0, 0, 0, 1, 2], [0, 0, 1, 2, 0], [0, 0, 0, 0, 0],
                         [0, 0, 0, 0, 0], [1, 2, 3, 3, 3])
     got = add_self_loops(fst, kinds)
-    assert got.num_states() == 6  # state 3 kept for epsilon, plus 3_k1 and 3_k2
+    assert got.num_states() == 6  # state 3 kept for epsilon, plus 3_kind1 and 3_kind2
     assert costs_for(got, [1]) == pytest.approx(-math.log(0.5), abs=1e-6)
     assert costs_for(got, [2, 2]) == pytest.approx(-2 * math.log(0.5), abs=1e-6)
     assert costs_for(got, []) == pytest.approx(0.0, abs=1e-6)

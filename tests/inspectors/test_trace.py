@@ -1,7 +1,7 @@
 """Tests of `netbuild trace`: one fixture per cause code, the facts behind each verdict,
 the graph-path analysis, and the command line.
 
-Fixtures: tests/data/trace/ (a small harbour-office scenario of our own: phones.txt,
+Fixtures: tests/data/trace/ (a small harbour-office scenario of our own: inventory.txt,
 lexicon.txt with a probability column, model.arpa written by hand, triphone.ctx).
 """
 
@@ -64,7 +64,7 @@ def stale_build(tmp_path_factory) -> Path:
 
 @pytest.mark.parametrize("word, cause, stage", [
     ("harbour", "not_in_lexicon", "lexicon"),  # in model.arpa, no lexicon line
-    ("buoy", "unknown_phone", "lexicon"),  # 'oy' is not in phones.txt
+    ("buoy", "unknown_phone", "lexicon"),  # 'oy' is not in inventory.txt
     ("mooring", "not_in_language_model", "language_model"),  # no 1-gram line
     ("anchor", "zero_probability", "language_model"),  # -99 in its 1-gram and 2-gram
     ("dock", "ok", None),
@@ -283,7 +283,7 @@ def test_full_graph_build_is_traced_through_every_stage(tmp_path):
     project.write_text(
         "[inputs]\n"
         + "".join(f'{k} = "{full / v}"\n' for k, v in (
-            ("phones", "phones.txt"), ("lexicon", "lexicon.txt"), ("lm", "bigram.arpa"),
+            ("phones", "inventory.txt"), ("lexicon", "lexicon.txt"), ("lm", "bigram.arpa"),
             ("context", "triphone.ctx")))
         + "[lexicon]\nprobabilities = true\n", encoding="utf-8")
     build(read_project(project), tmp_path / "out")

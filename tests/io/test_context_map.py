@@ -66,7 +66,7 @@ def test_reads_a_map(tmp_path):
 
 
 def test_demo_map_reads_and_matches_its_description():
-    inv = read_phones(ROPEWAY / "phones.txt")
+    inv = read_phones(ROPEWAY / "inventory.txt")
     diag = Diagnostics()
     cmap = read_context_map(ROPEWAY / "context.txt", inv, diag)
     assert diag.problems == []

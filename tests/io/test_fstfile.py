@@ -127,20 +127,20 @@ def test_bad_arrays_are_reported():
 @pytest.mark.parametrize("fst_type", ["vector", "const"])
 def test_write_fst_is_atomic_and_readable(tmp_path, fst_type):
     f = arrays_to_fst(2, 0, np.array([np.inf, 0.0]), [0], [1], [1], [0.5], [1])
-    target = tmp_path / "g.fst"
+    target = tmp_path / "out.fst"
     target.write_bytes(b"old")
     write_fst(f, target, fst_type)
     back = pywrapfst.Fst.read(str(target))
     assert back.fst_type() == fst_type and str(back) == str(f)
-    assert sorted(p.name for p in tmp_path.iterdir()) == ["g.fst"]  # no temp file left
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out.fst"]  # no temp file left
 
 
 def test_write_fst_errors_name_the_path(tmp_path):
     f = arrays_to_fst(1, 0, np.zeros(1), [], [], [], [], [])
-    with pytest.raises(InputError, match="missing/g.fst: cannot write"):
-        write_fst(f, tmp_path / "missing" / "g.fst")
+    with pytest.raises(InputError, match="missing/out.fst: cannot write"):
+        write_fst(f, tmp_path / "missing" / "out.fst")
     with pytest.raises(InputError, match="'compact' is unknown"):
-        write_fst(f, tmp_path / "g.fst", "compact")  # type: ignore[arg-type]
+        write_fst(f, tmp_path / "out.fst", "compact")  # type: ignore[arg-type]
 
 
 def test_many_arcs_in_bulk():

@@ -40,7 +40,7 @@ def _inventory_text(phones, roles, classes) -> list[str]:
 @given(inventories())
 def test_inventory_round_trip(tmp_path_factory, inv):
     phones, roles, classes = inv
-    path = tmp_path_factory.mktemp("inv") / "phones.txt"
+    path = tmp_path_factory.mktemp("inv") / "inventory.txt"
     path.write_text("\n".join(_inventory_text(phones, roles, classes)) + "\n")
     got = read_phones(path)
     assert got.phones == phones
@@ -65,7 +65,7 @@ def test_inventory_corruption_is_located(tmp_path_factory, inv, kind, data):
     # Insert after the phone lines so classes stay valid; line numbers are 1-based.
     at = data.draw(st.integers(min_value=1 + len(phones), max_value=len(lines)))
     lines.insert(at, _CORRUPTIONS[kind](phones))
-    path = tmp_path_factory.mktemp("inv") / "phones.txt"
+    path = tmp_path_factory.mktemp("inv") / "inventory.txt"
     path.write_text("\n".join(lines) + "\n")
     with pytest.raises(PhoneMapError) as err:
         read_phones(path)

@@ -449,7 +449,7 @@ def write_project(directory: Path, lm: str, context: str, *, final_optimize: boo
     project = directory / "project.toml"
     project.write_text(textwrap.dedent(f"""\
         [inputs]
-        phones = "{DATA / 'phones.txt'}"
+        phones = "{DATA / 'inventory.txt'}"
         lexicon = "{DATA / 'lexicon.txt'}"
         lm = "{DATA / lm}"
         context = "{DATA / context}"
@@ -490,7 +490,7 @@ CASES = [
 
 def reference_for(lm: str, context: str, silence_probability: float = SILENCE_PROBABILITY
                   ) -> Reference:
-    return Reference.from_files(DATA / "phones.txt", DATA / "lexicon.txt", DATA / lm,
+    return Reference.from_files(DATA / "inventory.txt", DATA / "lexicon.txt", DATA / lm,
                                 DATA / context, silence_probability)
 
 

@@ -83,7 +83,7 @@ def monophone_hmm(context: Path, phone_symbols: pynini.SymbolTable) -> pynini.Fs
     -ln(self_i), leaving it costs -ln(forward_i); every auxiliary marker of the phone
     table is a marker:marker loop on the hub.
     """
-    cmap = parse_context(context, parse_phones(DATA / "phones.txt").classes)
+    cmap = parse_context(context, parse_phones(DATA / "inventory.txt").classes)
     assert (cmap.left, cmap.right) == (0, 0)
     h = pynini.Fst()
     hub = h.add_state()
@@ -113,7 +113,7 @@ def without_markers(fst: pynini.Fst, phone_symbols: pynini.SymbolTable) -> pynin
     return out
 
 
-def phone_table(loaded, inventory: Path = DATA / "phones.txt") -> pynini.SymbolTable:
+def phone_table(loaded, inventory: Path = DATA / "inventory.txt") -> pynini.SymbolTable:
     """The build's phone table (L's input side), checked against the layout that
     docs/formats.md gives: epsilon, the inventory phones in file order, !backoff, then
     the disambiguation markers !amb1..!ambK."""
@@ -221,7 +221,7 @@ def test_demo_minimum_duration(demo, demo_arcs):
     """
     loaded, _ = demo
     a = demo_arcs
-    cmap = parse_context(DEMO / "context.txt", parse_phones(DEMO / "phones.txt").classes)
+    cmap = parse_context(DEMO / "context.txt", parse_phones(DEMO / "inventory.txt").classes)
     assert {len(s) for s in cmap.models.values()} == {STATES_PER_PHONE}
     frames = (a.ilabel != 0).astype(np.float64)
     silent = a.olabel == 0
@@ -296,7 +296,7 @@ def unoptimized_demo_graph(loaded) -> pynini.Fst:
     inputs = read_inputs(project, Diagnostics())
     cmap = read_context_map(DEMO / "context.txt", inputs.inventory)
     lexicon, grammar = loaded.lexicon, loaded.grammar
-    phones = phone_table(loaded, DEMO / "phones.txt")
+    phones = phone_table(loaded, DEMO / "inventory.txt")
     lg = pynini.compose(pynini.arcsort(lexicon, sort_type="olabel"), grammar)
     windows = occurring_windows(inputs.lexicon, inputs.inventory, cmap,
                                 project.options.lexicon)
@@ -340,7 +340,7 @@ def test_demo_optimized_equals_unoptimized_in_log_semiring(demo):
     other.)
     """
     loaded, _ = demo
-    cmap = parse_context(DEMO / "context.txt", parse_phones(DEMO / "phones.txt").classes)
+    cmap = parse_context(DEMO / "context.txt", parse_phones(DEMO / "inventory.txt").classes)
     centres: dict[str, set[str]] = {}
     for _, centre, _, model in cmap.rules:
         centres.setdefault(model, set()).add(centre)
