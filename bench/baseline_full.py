@@ -27,21 +27,7 @@ from pathlib import Path
 
 import pynini
 
-
-def _status(key: str) -> int:
-    with open("/proc/self/status", encoding="ascii") as fh:
-        for line in fh:
-            if line.startswith(key + ":"):
-                return int(line.split()[1]) * 1024
-    return 0
-
-
-def _reset_peak() -> None:
-    try:
-        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
-            fh.write("5")
-    except OSError:
-        pass
+from netbuild.memory import reset_peak, status_bytes
 
 
 def _arcs(fst: pynini.Fst) -> int:
@@ -111,17 +97,17 @@ def straightforward_graph(data_dir: str | Path) -> dict:
     project = read_project(Path(data_dir) / "project_full.toml")
     steps: list[dict] = []
     t0 = t = time.perf_counter()
-    _reset_peak()
+    reset_peak()
 
     def step(name: str, fst: pynini.Fst | None = None) -> None:
         nonlocal t
         now = time.perf_counter()
-        rec = {"name": name, "seconds": now - t, "peak_rss_bytes": _status("VmHWM")}
+        rec = {"name": name, "seconds": now - t, "peak_rss_bytes": status_bytes("VmHWM")}
         if fst is not None:
             rec["states"], rec["arcs"] = fst.num_states(), _arcs(fst)
         steps.append(rec)
         print(f"  {rec}", file=sys.stderr, flush=True)
-        _reset_peak()
+        reset_peak()
         t = time.perf_counter()  # counting arcs is not part of the step
 
     inputs = read_inputs(project, Diagnostics())

@@ -61,6 +61,8 @@ import tempfile
 import time
 from pathlib import Path
 
+from netbuild.memory import reset_peak, status_bytes
+
 HERE = Path(__file__).resolve().parent
 REPO = HERE.parent
 OUT = HERE / "out"
@@ -82,26 +84,9 @@ TARGETS = {
 # ---------------------------------------------------------------------------- child side
 
 
-def _status(field: str) -> int:
-    with open("/proc/self/status", encoding="ascii") as fh:
-        for line in fh:
-            if line.startswith(field + ":"):
-                return int(line.split()[1]) * 1024
-    raise RuntimeError(f"{field} missing from /proc/self/status")
-
-
-def _reset_peak() -> bool:
-    try:
-        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
-            fh.write("5")
-        return True
-    except OSError:
-        return False
-
-
 def _start() -> dict:
     """Resets the RSS high-water mark; returns the memory state before the work."""
-    return {"rss_before": _status("VmRSS"), "peak_reset": _reset_peak()}
+    return {"rss_before": status_bytes("VmRSS"), "peak_reset": reset_peak()}
 
 
 def _child_baseline(params: dict) -> dict:
@@ -113,7 +98,7 @@ def _child_baseline(params: dict) -> dict:
     import netbuild.io.arpa  # noqa: F401
     import netbuild.pipeline  # noqa: F401
 
-    return {"peak_rss": _status("VmHWM"), "rss_before": _status("VmRSS")}
+    return {"peak_rss": status_bytes("VmHWM"), "rss_before": status_bytes("VmRSS")}
 
 
 def _child_arpa_g(params: dict) -> dict:
@@ -125,10 +110,10 @@ def _child_arpa_g(params: dict) -> dict:
     t0 = time.perf_counter()
     model = read_arpa(params["arpa"])
     t1 = time.perf_counter()
-    peak_read = _status("VmHWM")
+    peak_read = status_bytes("VmHWM")
     grammar = build_grammar(model)
     t2 = time.perf_counter()
-    peak = _status("VmHWM")
+    peak = status_bytes("VmHWM")
     ngrams = sum(model.counts())
     return {**mem, "counts": model.counts(), "ngrams": ngrams,
             "read_seconds": t1 - t0, "build_seconds": t2 - t1, "seconds": t2 - t0,
@@ -156,11 +141,11 @@ def _child_wordgraph(params: dict) -> dict:
 
     def step(name: str, started: float, fst=None) -> float:
         now = time.perf_counter()
-        rec = {"name": name, "seconds": now - started, "peak_rss_bytes": _status("VmHWM")}
+        rec = {"name": name, "seconds": now - started, "peak_rss_bytes": status_bytes("VmHWM")}
         if fst is not None:
             rec["states"], rec["arcs"] = fst.num_states(), num_arcs(fst)
         steps.append(rec)
-        _reset_peak()
+        reset_peak()
         return time.perf_counter()
 
     t_begin = t = time.perf_counter()
@@ -205,7 +190,7 @@ def _child_workflow(params: dict) -> dict:
     with tempfile.TemporaryDirectory(dir=OUT) as tmp:
         build(project, Path(tmp) / "graph", progress=records.append)
         t1 = time.perf_counter()
-    return {**mem, "seconds": t1 - t0, "peak_rss": _status("VmHWM"),
+    return {**mem, "seconds": t1 - t0, "peak_rss": status_bytes("VmHWM"),
             "stages": [dataclasses.asdict(r) for r in records]}
 
 
@@ -230,7 +215,7 @@ def _child_fullgraph(params: dict) -> dict:
     with tempfile.TemporaryDirectory(dir=OUT) as tmp:
         result = build(project, Path(tmp) / "graph", progress=progress)
         t1 = time.perf_counter()
-        peak = _status("VmHWM")
+        peak = status_bytes("VmHWM")
         graph_file = Path(tmp) / "graph" / result.manifest["graph"]
         written = graph_file.stat().st_size
         fst = pywrapfst.Fst.read(str(graph_file))

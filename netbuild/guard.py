@@ -31,6 +31,7 @@ import pynini
 import pywrapfst
 
 from .errors import DeterminizeError
+from .memory import peak_rss
 from .symbols import BACKOFF
 
 # Exit codes of the child (besides 0 and signals).
@@ -188,18 +189,6 @@ def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
         "--determinize-max-memory; otherwise fix the lexicon or model")
 
 
-def _peak_rss() -> int:
-    """This process's peak resident set size in bytes (VmHWM, else getrusage)."""
-    try:
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
-
-
 def _child(argv: list[str] | None = None) -> int:
     """Runs in the child: reads IN, determinizes, writes OUT and a JSON STATUS."""
     parser = argparse.ArgumentParser(prog="python -m netbuild.guard")
@@ -222,7 +211,7 @@ def _child(argv: list[str] | None = None) -> int:
         print(f"FST error: {err}", file=sys.stderr)
         return _EXIT_FSTERROR
     with open(args.status, "w", encoding="utf-8") as fh:
-        json.dump({"peak_rss_bytes": _peak_rss(),
+        json.dump({"peak_rss_bytes": peak_rss(),
                    "seconds": time.monotonic() - started,
                    "states": ofst.num_states()}, fh)
     return 0

@@ -15,7 +15,6 @@ Every stage takes an FST and returns a new one; its input is never changed.
 from __future__ import annotations
 
 import dataclasses
-import resource
 import time
 from collections.abc import Callable, Sequence
 from typing import TYPE_CHECKING, Literal
@@ -28,6 +27,7 @@ from . import checks as chk
 from .errors import EmptyCompositionError, StageError
 from .guard import determinize_guarded
 from .io.fstfile import fst_to_arrays, shared_arrays, shared_conversions
+from .memory import peak_rss, reset_peak
 from .options import BuildOptions
 
 if TYPE_CHECKING:
@@ -61,37 +61,6 @@ def num_arcs(fst: pynini.Fst) -> int:
     if arrays is not None:
         return int(arrays.src.shape[0])
     return sum(fst.num_arcs(s) for s in fst.states())
-
-
-# ---------------------------------------------------------------------------- memory
-
-
-def _vm_hwm() -> int | None:
-    try:
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("VmHWM:"):
-                    return int(line.split()[1]) * 1024
-    except OSError:
-        return None
-    return None
-
-
-def _reset_peak() -> bool:
-    """Resets this process's VmHWM (Linux: write 5 to clear_refs); True on success."""
-    try:
-        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
-            fh.write("5")
-        return True
-    except OSError:
-        return False
-
-
-def _peak_rss() -> int:
-    hwm = _vm_hwm()
-    if hwm is not None:
-        return hwm
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # Linux: KiB
 
 
 # ---------------------------------------------------------------------------- stages
@@ -301,7 +270,7 @@ class Pipeline:
         fst = ifst
         for step in self.steps:
             details: dict = {}
-            _reset_peak()
+            reset_peak()
             # One block per stage: the stage, its checks and the record share each
             # FST's array conversion instead of converting it once per check.
             with shared_conversions():
@@ -315,7 +284,7 @@ class Pipeline:
                         check(fst, ctx)
                     details["check_seconds"] = time.perf_counter() - checked
                 arcs = num_arcs(fst)
-            peak = max(_peak_rss(), int(details.get("child_peak_rss_bytes", 0)))
+            peak = max(peak_rss(), int(details.get("child_peak_rss_bytes", 0)))
             record = StageRecord(step.name, fst.num_states(), arcs, seconds,
                                  peak, details)
             records.append(record)
@@ -373,7 +342,7 @@ def word_pipeline(lfst: pynini.Fst, gfst: pynini.Fst, opts: BuildOptions) -> Pip
 
 
 def _input_record(name: str, fst: pynini.Fst, seconds: float) -> StageRecord:
-    return StageRecord(name, fst.num_states(), num_arcs(fst), seconds, _peak_rss(),
+    return StageRecord(name, fst.num_states(), num_arcs(fst), seconds, peak_rss(),
                        {"check_seconds": seconds})
 
 

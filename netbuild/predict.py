@@ -6,7 +6,7 @@
 - `predict_graph_size(project, fractions=None, seed=0)`: the prediction.
 - `MemoryGuard(limit, order)`: a progress callback that stops a build before a stage
   whose estimated need (`stage_need`) exceeds the limit; `stage_order(opts)`,
-  `full_stage_order(opts)`: the stage names a build emits; `current_rss()`.
+  `full_stage_order(opts)`: the stage names a build emits.
 
 Method (docs/size.md has the measurements). The final graph grows with G, and G is
 cheap to build in full. So the whole build (L∘G to the final graph, checks off) is run
@@ -42,6 +42,7 @@ from .builders.vocabulary import restrict_vocabulary
 from .errors import Diagnostics, StageError
 from .inspectors.size import footprints
 from .io.arpa import ArpaModel, NgramTable
+from .memory import current_rss
 from .pipeline import build_word_graph
 from .project import Project
 
@@ -289,15 +290,6 @@ STAGE_GROWTH: dict[str, tuple[float, float]] = {
     "self-loops": (2.0, 2.0),
 }
 _INPUT_BUILDS = ("grammar", "lexicon", "context", "hmm")  # cheap; not guarded
-
-
-def current_rss() -> int:
-    """This process's resident memory now, in bytes (Linux /proc; 0 elsewhere)."""
-    try:
-        with open("/proc/self/statm", encoding="ascii") as fh:
-            return int(fh.read().split()[1]) * 4096
-    except (OSError, ValueError, IndexError):
-        return 0
 
 
 def stage_need(stage: str, input_states: int, input_arcs: int, resident: int) -> int:

@@ -1,0 +1,47 @@
+"""This process's memory, read from Linux's /proc (standard library only, so the
+determinization child can import it without loading more than pynini).
+
+- `status_bytes(field)`: a byte field of /proc/self/status ("VmHWM", "VmRSS"), or None.
+- `peak_rss()`: the peak resident set size in bytes (VmHWM, else getrusage).
+- `current_rss()`: the resident set size now, in bytes (0 where unknown).
+- `reset_peak()`: resets the peak (writes 5 to /proc/self/clear_refs); True on success.
+"""
+
+from __future__ import annotations
+
+import resource
+
+
+def status_bytes(field: str) -> int | None:
+    """Returns the /proc/self/status field `field` (given in kB) in bytes, or None."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith(field + ":"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        return None
+    return None
+
+
+def peak_rss() -> int:
+    """This process's peak resident set size in bytes (VmHWM, else getrusage)."""
+    hwm = status_bytes("VmHWM")
+    if hwm is not None:
+        return hwm
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024  # Linux: KiB
+
+
+def current_rss() -> int:
+    """This process's resident memory now, in bytes (0 where /proc is missing)."""
+    return status_bytes("VmRSS") or 0
+
+
+def reset_peak() -> bool:
+    """Resets this process's VmHWM (Linux: write 5 to clear_refs); True on success."""
+    try:
+        with open("/proc/self/clear_refs", "w", encoding="ascii") as fh:
+            fh.write("5")
+        return True
+    except OSError:
+        return False
