@@ -40,7 +40,7 @@ from .builders.grammar import build_grammar
 from .builders.lexicon import build_lexicon
 from .builders.vocabulary import restrict_vocabulary
 from .errors import Diagnostics, StageError
-from .inspectors.size import footprints
+from .inspectors.size import footprints, state_counts
 from .io.arpa import ArpaModel, NgramTable
 from .memory import current_rss
 from .pipeline import build_word_graph
@@ -197,16 +197,6 @@ def _final_graph(inputs, model: ArpaModel, opts, windows):
     return num_arcs(grammar.fst), fst
 
 
-def _measure(fst) -> tuple[int, int, int]:
-    states = arcs = with_arcs = 0
-    for s in fst.states():
-        n = fst.num_arcs(s)
-        states += 1
-        arcs += n
-        with_arcs += n > 0
-    return states, arcs, with_arcs
-
-
 def predict_graph_size(project: Project, fractions: Sequence[float] | None = None,
                        seed: int = 0) -> Prediction:
     """Predicts the final graph's states, arcs and bytes of `project` from sub-builds.
@@ -245,7 +235,7 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
         sub = subsample_model(model, f, seed) if f > 0 else ArpaModel(
             list(model.vocab), [model.orders[0]], model.path)
         gx, fst = _final_graph(inputs, sub, opts, windows)
-        s, a, s1 = _measure(fst)
+        s, a, s1 = state_counts(fst)
         samples.append(Sample(f, gx, s, a, s1, time.perf_counter() - t0))
         del fst
     base, rest = samples[0], samples[1:]

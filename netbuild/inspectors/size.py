@@ -58,7 +58,7 @@ import pynini
 import pywrapfst
 
 from ..errors import InputError
-from ..io.fstfile import ARC_RECORD, STATE_RECORD
+from ..io.fstfile import ARC_RECORD, STATE_RECORD, shared_arrays
 
 __all__ = ["Footprint", "SizeReport", "build_sizes", "check_budget", "file_size",
            "footprints", "fst_size", "header_bytes", "symbol_table_bytes",
@@ -181,15 +181,28 @@ def _report(states: int, arcs: int, with_arcs: int, fst: pynini.Fst | pywrapfst.
     return SizeReport(states, arcs, with_arcs, const, vector, sym_bytes, fst.arc_type())
 
 
-def fst_size(fst: pynini.Fst | pywrapfst.Fst) -> SizeReport:
-    """Returns the size report of `fst` (read-only; one pass over its states)."""
+def state_counts(fst: pynini.Fst | pywrapfst.Fst) -> tuple[int, int, int]:
+    """Returns (states, arcs, states with at least one arc) of `fst` (read-only).
+
+    Uses the arc arrays when a shared conversion of `fst` is open (inside a pipeline
+    stage), else one pass over the states.
+    """
+    arrays = shared_arrays(fst)
+    if arrays is not None:
+        per_state = np.bincount(arrays.src, minlength=arrays.num_states)
+        return arrays.num_states, int(arrays.src.shape[0]), int(np.count_nonzero(per_state))
     states = arcs = with_arcs = 0
     for s in fst.states():
         n = fst.num_arcs(s)
         states += 1
         arcs += n
         with_arcs += n > 0
-    return _report(states, arcs, with_arcs, fst)
+    return states, arcs, with_arcs
+
+
+def fst_size(fst: pynini.Fst | pywrapfst.Fst) -> SizeReport:
+    """Returns the size report of `fst` (read-only)."""
+    return _report(*state_counts(fst), fst)
 
 
 def _const_counts(path: Path, states: int, arcs: int) -> int:
