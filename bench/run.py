@@ -134,7 +134,8 @@ def _child_wordgraph(params: dict) -> dict:
     from netbuild.pipeline import build_word_graph, num_arcs
 
     opts = BuildOptions(lexicon=LexiconOptions(has_probabilities=True),
-                        checks=params["checks"])
+                        checks=params["checks"],
+                        word_graph=params.get("word_graph", "tree"))
     data = Path(params["data"])
     mem = _start()
     steps: list[dict] = []
@@ -483,6 +484,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--datasets", nargs="*", default=["w20k_n1m", "w20k_n5m"],
                     choices=list(DATASETS),
                     help="models for arpa_g")
+    ap.add_argument("--word-graph", nargs="*", default=["tree"], choices=["tree", "compose"],
+                    help="wordgraph: how det(L∘G) is made (BuildOptions.word_graph)")
     ap.add_argument("--repeat", type=int, default=3)
     ap.add_argument("--regenerate", action="store_true", help="regenerate the inputs")
     ap.add_argument("--results", default=str(OUT / "results.json"))
@@ -523,11 +526,12 @@ def main(argv: list[str] | None = None) -> int:
     if "wordgraph" in args.only or "workflow" in args.only:
         data = ensure_data("w20k_n1m", args.regenerate)
     if "wordgraph" in args.only:
-        for checks in (True, False):
-            label = f"w20k_n1m checks={'on' if checks else 'off'}"
+        for method, checks in [(m, c) for m in args.word_graph for c in (True, False)]:
+            label = f"w20k_n1m {method} checks={'on' if checks else 'off'}"
             runs = []
             for i in range(args.repeat):
-                r = measure("wordgraph", {"data": str(data), "checks": checks})
+                r = measure("wordgraph", {"data": str(data), "checks": checks,
+                                          "word_graph": method})
                 print(f"wordgraph {label} run {i + 1}: {r['seconds']:.2f} s, "
                       f"peak {_mb(r['peak_rss'])}", file=sys.stderr)
                 runs.append(r)

@@ -128,9 +128,9 @@ def check_nonempty(fst: pynini.Fst, ctx: CheckContext) -> None:
         raise InputCheckFailed(
             "lexicon", "the lexicon transducer accepts no phone sequence",
             "check that the lexicon has at least one word with phones")
-    if ctx.stage == "compose":
+    if ctx.stage in ("compose", "compose-determinize"):
         raise EmptyCompositionError(
-            "compose", "L∘G has no path: no word of the lexicon occurs in the model",
+            ctx.stage, "L∘G has no path: no word of the lexicon occurs in the model",
             "check that the lexicon and the language model use the same word spellings")
     raise _internal(fst, ctx, "the FST has no successful path")
 

@@ -176,6 +176,9 @@ def _build_options(f):
                      metavar="SECONDS", help="Time limit of determinization."),
         click.option("--final-optimize/--no-final-optimize", default=None,
                      help="Full graph: determinize and minimize H∘C∘L∘G."),
+        click.option("--word-graph", type=click.Choice(["tree", "compose"]),
+                     help="How det(L∘G) is made: built directly (tree) or by OpenFst "
+                     "composition and determinization (compose)."),
         click.option("--transition-scale", type=click.FloatRange(0.0), metavar="X",
                      help="Full graph: scale of the HMM self-loop and exit costs."),
     ]):

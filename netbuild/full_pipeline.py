@@ -2,7 +2,8 @@
 
 - `FullGraph`: the graph, its stage records, kept FSTs and label tables.
 - `full_pipeline(cfst, hfst, kind_table, opts)`: the `Pipeline` from the word graph on.
-- `build_full_graph(word_graph, lexicon, cmap, contexts, opts, progress=None)`: the run.
+- `build_full_graph(word_graph, lexicon, cmap, contexts, opts, progress=None,
+  keep_intermediates=False)`: the run.
 - `remove_markers_stage(ifst, marker_ids)`: auxiliary markers replaced by epsilon.
 - `minimize_unmarked_stage(ifst)`: encoded minimization that tolerates epsilon arcs.
 
@@ -29,6 +30,12 @@ With ``final_optimize`` False steps 4 and 6 are skipped: the graph is bigger but
 tropical-equivalent (demo: 96 627 states / 238 879 arcs in 1.7 s, against
 69 797 / 170 804 in 3.6 s optimized). Every stage records ``stochastic_deviation`` (max over states of
 |ln(outgoing probability + final)|, log semiring) in its details.
+
+Memory: every stage gets its input handed over (`netbuild.guard.FstHandoff`) and drops it
+when it returns, before its output is measured and checked; the determinization drops it
+once the child has its copy. Unless `keep_intermediates` is asked for, at most a stage's
+input and output (with their array conversions) are alive at a time, besides C, H, G, L
+and the word-level graph.
 """
 
 from __future__ import annotations
@@ -46,7 +53,10 @@ from .builders.context import build_context
 from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
                            make_model_symbols)
 from .errors import EmptyCompositionError, StageError
+from .guard import FstHandoff
 from .io.context_map import ContextMap
+from .io.fstfile import forget_shared
+from .memory import release_free_memory
 from .options import BuildOptions
 from .pipeline import (Pipeline, StageRecord, Step, WordGraph, _input_record,
                        determinize_stage)
@@ -62,7 +72,9 @@ __all__ = ["FullGraph", "build_full_graph", "full_pipeline", "minimize_unmarked_
 class FullGraph:
     """The full graph and what went into it.
 
-    `intermediates` holds "context" (C), "hmm" (H), the kept stage results and "graph".
+    `intermediates` holds "context" (C), "hmm" (H) and "graph"; built with
+    `keep_intermediates` also every stage's result ("clg", "hclg_raw",
+    "determinized_full", "unmarked", "minimized_full").
     """
 
     fst: pynini.Fst
@@ -123,10 +135,21 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
                   opts: BuildOptions) -> Pipeline:
     """Returns the pipeline from the word-level graph to the full graph (see module)."""
 
-    def measured(stage: Callable[[pynini.Fst, dict], pynini.Fst]
-                 ) -> Callable[[pynini.Fst, dict], pynini.Fst]:
-        def run(f: pynini.Fst, details: dict) -> pynini.Fst:
-            out = stage(f, details)
+    def measured(stage: Callable[[pynini.Fst, dict], pynini.Fst], handoff: bool = False
+                 ) -> Callable[[FstHandoff, dict], pynini.Fst]:
+        """The stage, then its output's deviation; the input is handed over (steps are
+        `hands_off`) and, unless `handoff` passes it on to the stage, freed with any
+        conversion of it as soon as the stage returns."""
+        def run(given: FstHandoff, details: dict) -> pynini.Fst:
+            if handoff:
+                out = stage(given, details)
+            else:
+                f = given.take()
+                out = stage(f, details)
+                if f is not out:
+                    forget_shared(f)
+                del f
+                release_free_memory()
             details["stochastic_deviation"] = chk.stochasticity_deviation(out)
             return out
         return run
@@ -137,8 +160,8 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
     def compose_hmm(clg: pynini.Fst, details: dict) -> pynini.Fst:
         return _compose(hfst, clg, "compose-hmm", "H∘CLG")
 
-    def determinize(f: pynini.Fst, details: dict) -> pynini.Fst:
-        return determinize_stage(f, opts, details=details)
+    def determinize(f: FstHandoff, details: dict) -> pynini.Fst:
+        return determinize_stage(f, opts, details=details)  # drops f once written
 
     def unmark(f: pynini.Fst, details: dict) -> pynini.Fst:
         details["markers"] = list(kind_table.markers)
@@ -156,25 +179,32 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
         return ofst
 
     deterministic = _STRUCTURE + (chk.check_input_deterministic,)
-    steps = [Step("compose-context", measured(compose_context), _STRUCTURE, "clg"),
-             Step("compose-hmm", measured(compose_hmm), _STRUCTURE, "hclg_raw")]
+    # Every step hands its input over (see `measured`), so it is freed when its stage
+    # is done with it unless the pipeline was asked to keep it.
+    steps = [Step("compose-context", measured(compose_context), _STRUCTURE, "clg",
+                  hands_off=True),
+             Step("compose-hmm", measured(compose_hmm), _STRUCTURE, "hclg_raw",
+                  hands_off=True)]
     if opts.final_optimize:
-        steps.append(Step("determinize-hmm", measured(determinize), deterministic,
-                          "determinized_full"))
+        steps.append(Step("determinize-hmm", measured(determinize, handoff=True),
+                          deterministic, "determinized_full", hands_off=True))
     steps.append(Step("remove-markers", measured(unmark),
-                      _STRUCTURE + (chk.check_no_auxiliary_markers,), "unmarked"))
+                      _STRUCTURE + (chk.check_no_auxiliary_markers,), "unmarked",
+                      hands_off=True))
     if opts.final_optimize:
         steps.append(Step("minimize-hmm", measured(minimize),
-                          _STRUCTURE + (chk.check_no_auxiliary_markers,), "minimized_full"))
+                          _STRUCTURE + (chk.check_no_auxiliary_markers,), "minimized_full",
+                          hands_off=True))
     steps.append(Step("self-loops", measured(self_loops),
                       _STRUCTURE + (chk.check_no_auxiliary_markers, chk.check_emission_inputs,
-                                    chk.check_word_outputs)))
+                                    chk.check_word_outputs), hands_off=True))
     return Pipeline(steps)
 
 
 def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: ContextMap,
                      contexts: Mapping[tuple[str, ...], str], opts: BuildOptions,
-                     progress: Callable[[StageRecord], None] | None = None) -> FullGraph:
+                     progress: Callable[[StageRecord], None] | None = None,
+                     keep_intermediates: bool = False) -> FullGraph:
     """Builds the full graph from the word-level graph, the context map and the windows.
 
     Args:
@@ -185,6 +215,8 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
         (`netbuild.builders.context.window_models`).
       opts: the build options (`final_optimize`, `transition_scale`, limits, checks).
       progress: called with each stage's record as soon as it is done.
+      keep_intermediates: keep every stage's FST in `FullGraph.intermediates` (else
+        only C, H and the final graph; each stage's size is in its record either way).
 
     Returns:
       A `FullGraph`; its FST reads emission classes (``e<c>`` at ``c + 1``) and writes
@@ -228,7 +260,8 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
 
     lg = word_graph.fst
     final, stage_records, kept = full_pipeline(cfst, hfst, kinds, opts).run(
-        lg, checks=opts.checks, context=context, progress=progress)
+        lg, checks=opts.checks, context=context, progress=progress,
+        keep=keep_intermediates)
     final.set_input_symbols(emissions)
     final.set_output_symbols(words)
     intermediates = {"context": cfst, "hmm": hfst, **kept, "graph": final}

@@ -1,6 +1,8 @@
 """Transducer determinization run in a child process with memory and time limits.
 
 - `GuardResult`: the determinized FST plus what the child measured.
+- `FstHandoff`: an FST handed over to a stage that may drop it as soon as it is done
+  with it (the guard drops its input once the child's input file is written).
 - `determinize_guarded(ifst, max_memory, timeout, ...)`: determinizes in a child process.
 - `precheck_determinizable(ifst, lfst=None, gfst=None)`: cheap sufficient conditions for
   failure, tested before the child starts.
@@ -31,7 +33,7 @@ import pynini
 import pywrapfst
 
 from .errors import DeterminizeError
-from .memory import peak_rss
+from .memory import peak_rss, release_free_memory
 from .symbols import BACKOFF
 
 # Exit codes of the child (besides 0 and signals).
@@ -47,6 +49,27 @@ class GuardResult:
     fst: pynini.Fst
     peak_rss_bytes: int
     seconds: float
+
+
+class FstHandoff:
+    """Holds an FST that its receiver may drop: `take()` returns it and lets go of it.
+
+    A pipeline passes its previous result this way when the next stage can release it
+    early (the caller keeps no reference of its own), so the FST is freed as soon as
+    the receiver drops it. Whoever else still refers to the FST keeps it alive.
+    """
+
+    __slots__ = ("_fst",)
+
+    def __init__(self, fst: pynini.Fst) -> None:
+        self._fst: pynini.Fst | None = fst
+
+    def take(self) -> pynini.Fst:
+        """Returns the FST and forgets it; a second call raises `RuntimeError`."""
+        fst, self._fst = self._fst, None
+        if fst is None:
+            raise RuntimeError("the FST of this handoff was already taken")
+        return fst
 
 
 def _likely_causes(lfst: pynini.Fst | None, gfst: pynini.Fst | None) -> str:
@@ -105,14 +128,17 @@ def _limit_text(limit_bytes: int) -> str:
     return f"{limit_bytes / _MB:.0f} MB"
 
 
-def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
+def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout: float, *,
                         det_type: str = "functional", lfst: pynini.Fst | None = None,
                         gfst: pynini.Fst | None = None,
                         stage: str = "determinize") -> GuardResult:
     """Constructively determinizes the tropical transducer `ifst` in a child process.
 
     Args:
-        ifst: the FST to determinize (not changed); epsilon is treated as a label.
+        ifst: the FST to determinize (not changed); epsilon is treated as a label. Given
+            as an `FstHandoff`, it is dropped (with its shared conversion) once the
+            child's input file is written, so the parent does not hold it while the
+            child runs; neither the error messages nor the checks after the stage use it.
         max_memory: address-space limit of the child, in bytes (RLIMIT_AS).
         timeout: wall-clock limit in seconds; the child is killed when it is reached.
         det_type: OpenFst's determinization type ("functional", "nonfunctional",
@@ -128,11 +154,22 @@ def determinize_guarded(ifst: pynini.Fst, max_memory: int, timeout: float, *,
         DeterminizeError: the pre-checks failed, or the child ran out of memory, hit the
             timeout, found the input non-functional, or crashed.
     """
+    handed = isinstance(ifst, FstHandoff)
+    if handed:
+        ifst = ifst.take()
     precheck_determinizable(ifst, lfst, gfst)
     with tempfile.TemporaryDirectory(prefix="netbuild-det-") as tmp:
         ipath, opath, spath = (os.path.join(tmp, n) for n in ("in.fst", "out.fst",
                                                                "status.json"))
         ifst.write(ipath)
+        if handed:
+            # Imported here: the child, which runs this module, never needs numpy.
+            from .io.fstfile import forget_shared
+
+            # The pre-check's conversion is the only other reference made here.
+            forget_shared(ifst)
+            del ifst
+            release_free_memory()  # so the machine has it while the child runs
         cmd = [sys.executable, "-m", "netbuild.guard", ipath, opath, spath,
                "--max-memory", str(int(max_memory)), "--det-type", det_type]
         started = time.monotonic()

@@ -5,6 +5,7 @@ determinization child can import it without loading more than pynini).
 - `peak_rss()`: the peak resident set size in bytes (VmHWM, else getrusage).
 - `current_rss()`: the resident set size now, in bytes (0 where unknown).
 - `reset_peak()`: resets the peak (writes 5 to /proc/self/clear_refs); True on success.
+- `release_free_memory()`: gives the C allocator's free pages back (glibc malloc_trim).
 """
 
 from __future__ import annotations
@@ -45,3 +46,33 @@ def reset_peak() -> bool:
         return True
     except OSError:
         return False
+
+
+_TRIM: list = []  # the C library's malloc_trim, or None, once looked up
+
+
+def release_free_memory() -> bool:
+    """Gives the C allocator's free pages back to the system; True when it could.
+
+    A freed FST leaves its many small blocks in the allocator's free lists, resident
+    until reused; large numpy arrays are mapped apart and cannot reuse them, so the
+    freed FST keeps counting in the resident size (and in the peak of what follows).
+    glibc's ``malloc_trim(0)`` returns every whole free page. Where the C library has
+    no ``malloc_trim`` (not glibc) this does nothing and returns False.
+    """
+    if not _TRIM:
+        import ctypes
+        import ctypes.util
+
+        try:
+            libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
+            trim = libc.malloc_trim
+            trim.argtypes, trim.restype = [ctypes.c_size_t], ctypes.c_int
+        except (OSError, AttributeError):
+            trim = None
+        _TRIM.append(trim)
+    trim = _TRIM[0]
+    if trim is None:
+        return False
+    trim(0)
+    return True

@@ -16,6 +16,7 @@ from typing import Literal
 LexiconLayout = Literal["plain", "cmudict"]
 OovPolicy = Literal["drop", "unk", "fail"]
 FstType = Literal["vector", "const"]
+WordGraphMethod = Literal["tree", "compose"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -44,3 +45,7 @@ class BuildOptions:
     max_memory: int = 0  # bytes; stop before a stage estimated to need more; 0: no limit
     transition_scale: float = 1.0  # full graph: multiplies the HMM self-loop and exit costs
     final_optimize: bool = True  # full graph: determinize and minimize H∘C∘L∘G
+    # The word-level graph: "tree" builds det(L∘G) directly from G's arcs and the
+    # pronunciations (netbuild.lextree), falling back to "compose" (OpenFst's
+    # composition and determinization) where its preconditions do not hold.
+    word_graph: WordGraphMethod = "tree"

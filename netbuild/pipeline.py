@@ -1,15 +1,18 @@
 """The word-level pipeline: L∘G, determinization, minimization, weight pushing.
 
-- `StageRecord`: size, time and peak memory of one stage.
+- `StageRecord`: size (counts and bytes), time and peak memory of one stage.
 - `compose_stage(lfst, gfst)`: arc-sorted L∘G.
 - `determinize_stage(ifst, opts, lfst=None, gfst=None)`: guarded transducer determinization.
 - `minimize_stage(ifst, method="encoded")`: minimization keeping labels and weights.
 - `log_potentials(ifst)`: log-semiring distances to the final states, in bulk.
 - `push_stage(ifst, details=None)`: weight pushing in the log semiring.
 - `Pipeline`: an ordered list of (name, stage, checks), run with a check after each stage.
-- `WordGraph`, `build_word_graph(lexicon, grammar, opts, progress=None)`: the whole run.
+- `WordGraph`, `build_word_graph(lexicon, grammar, opts, progress=None,
+  keep_intermediates=False)`: the whole run.
 
-Every stage takes an FST and returns a new one; its input is never changed.
+Every stage takes an FST and returns a new one; its input is never changed. Each stage's
+size is recorded when it finishes, so the intermediate FSTs are dropped as soon as the
+next stage is done with them unless they are asked for (`keep_intermediates`).
 """
 
 from __future__ import annotations
@@ -25,9 +28,13 @@ import pywrapfst
 
 from . import checks as chk
 from .errors import EmptyCompositionError, StageError
-from .guard import determinize_guarded
-from .io.fstfile import fst_to_arrays, shared_arrays, shared_conversions
-from .memory import peak_rss, reset_peak
+from .footprint import SizeReport, fst_size
+from .guard import FstHandoff, determinize_guarded
+from . import lextree
+from .io.fstfile import (FstArrays, fst_to_arrays, retain_shared, share_arrays, shared_arrays,
+                         shared_conversions)
+from .bulk import value_iteration
+from .memory import peak_rss, release_free_memory, reset_peak
 from .options import BuildOptions
 
 if TYPE_CHECKING:
@@ -41,7 +48,9 @@ Check = Callable[[pynini.Fst, chk.CheckContext], None]
 
 @dataclasses.dataclass
 class StageRecord:
-    """What one stage produced and cost. `peak_rss_bytes` is the stage's own peak."""
+    """What one stage produced and cost. `peak_rss_bytes` is the stage's own peak;
+    `size` is the byte report of the stage's FST (`netbuild.footprint.fst_size`), taken
+    when the stage finished, so the FST itself need not be kept for it."""
 
     name: str
     states: int
@@ -49,6 +58,7 @@ class StageRecord:
     seconds: float
     peak_rss_bytes: int
     details: dict = dataclasses.field(default_factory=dict)
+    size: SizeReport | None = None
 
     def __str__(self) -> str:
         return (f"{self.name}: {self.states} states, {self.arcs} arcs, "
@@ -98,7 +108,7 @@ def compose_stage(lfst: pynini.Fst, gfst: pynini.Fst) -> pynini.Fst:
     return ofst
 
 
-def determinize_stage(ifst: pynini.Fst, opts: BuildOptions, *,
+def determinize_stage(ifst: pynini.Fst | FstHandoff, opts: BuildOptions, *,
                       lfst: pynini.Fst | None = None, gfst: pynini.Fst | None = None,
                       details: dict | None = None) -> pynini.Fst:
     """Constructively determinizes the tropical transducer `ifst` in a guarded child.
@@ -107,7 +117,8 @@ def determinize_stage(ifst: pynini.Fst, opts: BuildOptions, *,
     epsilon is treated as an ordinary label. The work runs in a child process limited to
     `opts.determinize_max_memory` bytes and `opts.determinize_timeout` seconds; see
     `netbuild.guard`. When `details` is given, the child's peak memory and time are
-    stored in it ("child_peak_rss_bytes", "child_seconds").
+    stored in it ("child_peak_rss_bytes", "child_seconds"). Given as an `FstHandoff`,
+    the input is dropped once the child has its copy (see `determinize_guarded`).
 
     Raises:
         DeterminizeError: a pre-check failed, or the child hit a limit or crashed.
@@ -169,33 +180,14 @@ def log_potentials(ifst: pynini.Fst, max_iterations: int = 3000,
     arcs = fst_to_arrays(ifst)
     prob = np.exp(-arcs.weight.astype(np.float64))
     final = np.exp(-arcs.final_weights.astype(np.float64))
-    ns = arcs.num_states
-    d = final.copy()
-    # The change between passes obeys e' = M e, so the ratio of successive change norms
-    # tends to the spectral radius of M. Once that ratio has stayed at or above 1 for a
-    # while, the total diverges and further passes only cost time (on a 1.7M-state
-    # graph each pass takes about half a second).
-    previous = np.inf
-    growing = 0
-    for iteration in range(max_iterations):
-        nxt = final + np.bincount(arcs.src, weights=prob * d[arcs.dst], minlength=ns)
-        if not np.all(np.isfinite(nxt)):
-            return None
-        change = np.abs(nxt - d)
-        d = nxt
-        if np.all(change <= rtol * np.maximum(d, 1e-300)):
-            with np.errstate(divide="ignore"):
-                return -np.log(d)
-        norm = float(change.sum())
-        growing = growing + 1 if norm >= previous * (1.0 - 1e-6) else 0
-        previous = norm
-        if iteration >= _WARMUP_PASSES and growing >= _GROWING_PASSES:
-            return None
-    return None
+    d = value_iteration(arcs.src, arcs.dst, prob, final, arcs.num_states, max_iterations,
+                        rtol)
+    if d is None:
+        return None
+    with np.errstate(divide="ignore"):
+        return -np.log(d)
 
 
-_WARMUP_PASSES = 20  # passes before the growth of the change is trusted
-_GROWING_PASSES = 10  # consecutive non-shrinking passes that mean divergence
 
 
 def push_stage(ifst: pynini.Fst, details: dict | None = None) -> pynini.Fst:
@@ -244,13 +236,18 @@ class Step:
     stage: Callable[[pynini.Fst, dict], pynini.Fst]
     checks: Sequence[Check] = ()
     keep_as: str | None = None  # key under which the result is kept, if any
+    # The stage gets its input as a `netbuild.guard.FstHandoff` and may drop it before
+    # it returns (the pipeline then holds no reference of its own while it runs).
+    hands_off: bool = False
 
 
 class Pipeline:
     """An ordered list of (name, stage, checks), run one after the other.
 
     Each stage gets the previous result and a `details` dict it may fill; its checks
-    run right after it unless `checks` is False.
+    run right after it unless `checks` is False. The previous result is released when
+    the stage returns, before the checks of the new one (or, for a step with
+    `hands_off`, whenever the stage drops it), unless it is kept.
     """
 
     def __init__(self, steps: Sequence[Step]) -> None:
@@ -263,32 +260,47 @@ class Pipeline:
     def run(self, ifst: pynini.Fst, *, checks: bool = True,
             context: Callable[[str], chk.CheckContext] | None = None,
             progress: Callable[[StageRecord], None] | None = None,
+            keep: bool = False,
             ) -> tuple[pynini.Fst, list[StageRecord], dict[str, pynini.Fst]]:
-        """Runs every step; returns the last FST, the stage records and the kept FSTs."""
+        """Runs every step; returns the last FST, the stage records and the kept FSTs.
+
+        Each record carries its FST's size report (`StageRecord.size`), taken inside the
+        stage's shared conversion, so no FST is needed for it afterwards. With `keep`,
+        the result of each step with a `keep_as` key is returned under that key;
+        without, none is, and each result is freed once the next stage is done with it
+        (unless the caller holds it: the input `ifst` stays the caller's).
+        """
         records: list[StageRecord] = []
         kept: dict[str, pynini.Fst] = {}
-        fst = ifst
+        fst, ifst = ifst, None  # one reference to the current FST: `fst`
         for step in self.steps:
             details: dict = {}
             reset_peak()
             # One block per stage: the stage, its checks and the record share each
             # FST's array conversion instead of converting it once per check.
             with shared_conversions():
+                given = FstHandoff(fst) if step.hands_off else fst
+                fst = None  # while the stage runs, `given` is the loop's only reference
                 started = time.perf_counter()
-                fst = step.stage(fst, details)
+                fst = step.stage(given, details)
                 seconds = time.perf_counter() - started
+                # A conversion the stage made of its input (or of a temporary) would
+                # keep it alive through the checks, which look only at the new FST.
+                given = None
+                retain_shared(fst)
+                release_free_memory()  # what the input and the stage's temporaries held
                 if checks:
                     ctx = context(step.name) if context else chk.CheckContext(step.name)
                     checked = time.perf_counter()
                     for check in step.checks:
                         check(fst, ctx)
                     details["check_seconds"] = time.perf_counter() - checked
-                arcs = num_arcs(fst)
+                size = fst_size(fst)  # one count: bulk when the checks converted it
             peak = max(peak_rss(), int(details.get("child_peak_rss_bytes", 0)))
-            record = StageRecord(step.name, fst.num_states(), arcs, seconds,
-                                 peak, details)
+            record = StageRecord(step.name, size.states, size.arcs, seconds,
+                                 peak, details, size)
             records.append(record)
-            if step.keep_as:
+            if keep and step.keep_as:
                 kept[step.keep_as] = fst
             if progress is not None:
                 progress(record)
@@ -299,8 +311,9 @@ class Pipeline:
 class WordGraph:
     """The optimized word-level graph, its stage records and kept intermediate FSTs.
 
-    `intermediates` holds "lexicon", "grammar", "composed", "determinized",
-    "minimized", "pushed" (when pushing is on) and "wordgraph" (the final FST).
+    `intermediates` always holds "lexicon", "grammar" and "wordgraph" (the final FST);
+    built with `keep_intermediates` also "composed", "determinized", "minimized" and
+    "pushed" (when pushing is on). Each stage's size is in its record either way.
     """
 
     fst: pynini.Fst
@@ -333,7 +346,65 @@ def word_pipeline(lfst: pynini.Fst, gfst: pynini.Fst, opts: BuildOptions) -> Pip
     steps = [
         Step("compose", compose, _STRUCTURE + (chk.check_no_input_epsilon_cycles,
                                                chk.check_words_reachable), "composed"),
-        Step("determinize", determinize, _DETERMINISTIC, "determinized"),
+        Step("determinize", determinize, _DETERMINISTIC, "determinized", hands_off=True),
+        Step("minimize", minimize, _DETERMINISTIC, "minimized"),
+    ]
+    if opts.push_weights:
+        steps.append(Step("push", push, _DETERMINISTIC, "pushed"))
+    return Pipeline(steps)
+
+
+def tree_pipeline(inputs: lextree.TreeInputs, phones: pynini.SymbolTable | None,
+                  words: pynini.SymbolTable | None, opts: BuildOptions) -> Pipeline:
+    """Returns the pipeline from G to the word graph that builds det(L∘G) directly.
+
+    Stages: "compose-determinize" (`lextree.build_tree_graph`: the determinized L∘G,
+    without composing), "minimize" (`lextree.minimize_tree_graph`, the same encoded
+    minimization as `minimize_stage`) and, when `opts.push_weights`, "push" (in the
+    log semiring when L∘G's total converges, else in the tropical semiring with the
+    distances the construction computed). Each stage hands its arrays to the checks
+    (no conversion back from the FST). A stage given an FST other than the one the
+    previous stage made falls back to the general stage.
+    """
+    made: dict[str, tuple] = {}
+
+    def fst_of(arcs: FstArrays) -> pynini.Fst:
+        fst = lextree.tree_graph_fst(arcs, phones, words)
+        share_arrays(fst, arcs)
+        return fst
+
+    def compose_determinize(g: pynini.Fst, details: dict) -> pynini.Fst:
+        tree = lextree.build_tree_graph(inputs)
+        fst = fst_of(tree.arcs)
+        details.update(method="lexicon-tree", pairs=tree.pairs, tree_nodes=tree.tree_nodes,
+                       tail_nodes=tree.tail_nodes)
+        made["tree"] = (fst, tree)
+        return fst
+
+    def minimize(f: pynini.Fst, details: dict) -> pynini.Fst:
+        fst, tree = made.pop("tree", (None, None))
+        details["method"] = "encoded"
+        if f is not fst:
+            return minimize_stage(f, "encoded")
+        arcs, potentials = lextree.minimize_tree_graph(tree)
+        del tree, fst
+        out = fst_of(arcs)
+        made["minimized"] = (out, arcs, potentials)
+        return out
+
+    def push(f: pynini.Fst, details: dict) -> pynini.Fst:
+        fst, arcs, potentials = made.pop("minimized", (None, None, None))
+        if f is not fst or potentials is None or not lextree.log_total_diverges(inputs):
+            return push_stage(f, details)
+        out = fst_of(lextree.push_arrays(arcs, potentials))
+        details["semiring"] = "tropical"
+        details["reason"] = ("the log-semiring total of the graph does not converge; "
+                             "pushed in the tropical semiring")
+        return out
+
+    steps = [
+        Step("compose-determinize", compose_determinize,
+             _DETERMINISTIC + (chk.check_words_reachable,), "determinized"),
         Step("minimize", minimize, _DETERMINISTIC, "minimized"),
     ]
     if opts.push_weights:
@@ -342,18 +413,23 @@ def word_pipeline(lfst: pynini.Fst, gfst: pynini.Fst, opts: BuildOptions) -> Pip
 
 
 def _input_record(name: str, fst: pynini.Fst, seconds: float) -> StageRecord:
-    return StageRecord(name, fst.num_states(), num_arcs(fst), seconds, peak_rss(),
-                       {"check_seconds": seconds})
+    size = fst_size(fst)
+    return StageRecord(name, size.states, size.arcs, seconds, peak_rss(),
+                       {"check_seconds": seconds}, size)
 
 
 def build_word_graph(lexicon: LexiconResult, grammar: GrammarResult, opts: BuildOptions,
-                     progress: Callable[[StageRecord], None] | None = None) -> WordGraph:
+                     progress: Callable[[StageRecord], None] | None = None,
+                     keep_intermediates: bool = False) -> WordGraph:
     """Builds the optimized word-level graph push(min(det(L∘G))) from L and G.
 
     Checks L and G first (unless `opts.checks` is False): structure, labels, homophones
     without markers, the back-off pass-through. Then composes, determinizes (guarded),
     minimizes and pushes, checking after each stage. `progress` is called with each
-    stage's record as soon as the stage is done. Neither input FST is changed.
+    stage's record as soon as the stage is done. Neither input FST is changed. With
+    `keep_intermediates` every stage's FST is kept in `WordGraph.intermediates`;
+    without, only G, L and the final graph are, and each stage's FST is freed once the
+    next stage is done with it (its size is in its `StageRecord`).
 
     Raises:
         InputCheckFailed, EmptyCompositionError, DeterminizeError: input causes.
@@ -387,9 +463,15 @@ def build_word_graph(lexicon: LexiconResult, grammar: GrammarResult, opts: Build
         if progress is not None:
             progress(record)
 
-    pipeline = word_pipeline(lfst, gfst, opts)
+    pipeline = None
+    if opts.word_graph == "tree":
+        tree_in, _ = lextree.tree_inputs(lexicon, grammar)
+        if tree_in is not None:
+            pipeline = tree_pipeline(tree_in, phones, words, opts)
+    if pipeline is None:
+        pipeline = word_pipeline(lfst, gfst, opts)
     final, stage_records, kept = pipeline.run(gfst, checks=opts.checks, context=context,
-                                              progress=progress)
+                                              progress=progress, keep=keep_intermediates)
     final.set_input_symbols(phones)
     final.set_output_symbols(words)
     intermediates = {"grammar": gfst, "lexicon": lfst, **kept, "wordgraph": final}

@@ -269,6 +269,7 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
 # memory plus `copies * ratio * input` fits the limit.
 STAGE_GROWTH: dict[str, tuple[float, float]] = {
     "compose": (4.0, 2.0),  # input: G and L together
+    "compose-determinize": (4.0, 2.0),  # the same input; arrays, then the FST
     "determinize": (1.5, 3.0),  # child: input + output; the parent reads it back
     "minimize": (1.0, 3.0),  # encoded copy, minimized, decoded
     "push": (1.0, 3.0),
@@ -290,9 +291,12 @@ def stage_need(stage: str, input_states: int, input_arcs: int, resident: int) ->
     return int(resident + copies * vector.memory_bytes)
 
 
-def stage_order(opts) -> list[str]:
-    """Returns the names of the stage records a build with `opts` emits, in order."""
-    order = ["grammar", "lexicon", "compose", "determinize", "minimize"]
+def stage_order(opts, tree: bool = False) -> list[str]:
+    """Returns the names of the stage records a build with `opts` emits, in order;
+    `tree`: the word-level graph is built directly (`pipeline.tree_pipeline`)."""
+    order = ["grammar", "lexicon"]
+    order += ["compose-determinize"] if tree else ["compose", "determinize"]
+    order.append("minimize")
     if opts.push_weights:
         order.append("push")
     return order
@@ -338,7 +342,7 @@ class MemoryGuard:
         if stage is None or any(s in _INPUT_BUILDS and s not in self.sizes
                                 for s in following[:following.index(stage)]):
             return  # the next stage's inputs are not all built yet
-        if stage == "compose":
+        if stage in ("compose", "compose-determinize"):
             g, lx = self.sizes.get("grammar"), self.sizes.get("lexicon")
             if g is None or lx is None:
                 return

@@ -40,6 +40,7 @@ Relative paths are taken relative to the directory holding the project file::
     max_memory = "16GiB"         # stop before a stage estimated to need more (size);
                                  # also caps determinize_max_memory; 0 (default): no limit
     final_optimize = true        # full graph: determinize and minimize H∘C∘L∘G
+    word_graph = "tree"          # "tree": det(L∘G) built directly; "compose": by OpenFst
 
     [hmm]
     transition_scale = 1.0       # full graph: scales self-loop and exit costs (>= 0)
@@ -146,6 +147,7 @@ _SCHEMA: dict[str, dict[str, tuple[str, tuple[str, ...]]]] = {
         "determinize_timeout": ("seconds", ()),
         "max_memory": ("size", ()),
         "final_optimize": ("bool", ()),
+        "word_graph": ("str", ("tree", "compose")),
     },
     "hmm": {"transition_scale": ("scale", ())},
 }
@@ -328,7 +330,8 @@ def _with_values(project: Project, values: dict[str, Any]) -> Project:
            "keep_stress": "keep_stress", "rescale": "rescale_probabilities",
            "silence_probability": "silence_probability"}
     build = {"push_weights", "fst_type", "checks", "determinize_max_memory",
-             "determinize_timeout", "final_optimize", "transition_scale", "max_memory"}
+             "determinize_timeout", "final_optimize", "transition_scale", "max_memory",
+             "word_graph"}
     lex_opts = dataclasses.replace(
         o.lexicon, **{lex[k]: v for k, v in values.items() if k in lex})
     gram_opts = dataclasses.replace(

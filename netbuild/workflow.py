@@ -93,7 +93,7 @@ from .builders.contexts import Coverage, check_coverage
 from .builders.context import window_models
 from .full_pipeline import FullGraph, build_full_graph
 from .pipeline import StageRecord, WordGraph, build_word_graph
-from .inspectors.size import fst_size
+from .lextree import tree_inputs
 from .predict import MemoryGuard, full_stage_order, stage_order
 from .project import Project, require_inputs
 from .symbols import SENTENCE_END, SENTENCE_START, UNKNOWN, is_auxiliary
@@ -406,38 +406,16 @@ def plain_json(value: Any) -> Any:
     return str(value)
 
 
-def _stage_json(record: StageRecord, fst: pynini.Fst | None = None) -> dict[str, Any]:
+def _stage_json(record: StageRecord) -> dict[str, Any]:
     entry = {"name": record.name, "states": int(record.states), "arcs": int(record.arcs),
              "seconds": float(record.seconds), "peak_rss_bytes": int(record.peak_rss_bytes),
              "details": plain_json(getattr(record, "details", None) or {})}
-    if fst is not None:
-        report = fst_size(fst)
+    # The size was taken when the stage finished (the FST itself is not kept for it).
+    report = record.size
+    if report is not None:
         entry["bytes"] = {"const": dataclasses.asdict(report.const),
                           "vector": dataclasses.asdict(report.vector)}
     return entry
-
-
-# The intermediate FST each stage record describes (word graph, then full graph).
-_STAGE_FSTS = {"grammar": "grammar", "lexicon": "lexicon", "compose": "composed",
-               "determinize": "determinized", "minimize": "minimized", "push": "pushed"}
-_FULL_STAGE_FSTS = {"context": "context", "hmm": "hmm", "compose-context": "clg",
-                    "compose-hmm": "hclg_raw", "determinize-hmm": "determinized_full",
-                    "remove-markers": "unmarked", "minimize-hmm": "minimized_full",
-                    "self-loops": "graph"}
-
-
-def _stage_fsts(graph: WordGraph, full: FullGraph | None,
-                stages: list[StageRecord]) -> list[pynini.Fst | None]:
-    """The FST of each stage record, where the build kept it."""
-    word = len(graph.stages)
-    out: list[pynini.Fst | None] = []
-    for i, record in enumerate(stages):
-        if i < word:
-            out.append(graph.intermediates.get(_STAGE_FSTS.get(record.name, "")))
-        else:
-            assert full is not None
-            out.append(full.intermediates.get(_FULL_STAGE_FSTS.get(record.name, "")))
-    return out
 
 
 def _write_symbols(table: pynini.SymbolTable, path: Path) -> None:
@@ -445,7 +423,7 @@ def _write_symbols(table: pynini.SymbolTable, path: Path) -> None:
 
 
 def build(project: Project, out_dir: str | os.PathLike,
-          progress: Progress | None = None) -> BuildResult:
+          progress: Progress | None = None, keep_intermediates: bool = False) -> BuildResult:
     """Compiles `project` and writes the output directory `out_dir` atomically.
 
     Reads and checks the inputs (all problems raised together), restricts the model's
@@ -456,6 +434,10 @@ def build(project: Project, out_dir: str | os.PathLike,
       project: inputs and options.
       out_dir: the output directory; replaced only when the new one is complete.
       progress: called with each `StageRecord` as its stage finishes.
+      keep_intermediates: keep every stage's FST in the result's
+        `graph.intermediates` / `full.intermediates` (for inspection and tests; they
+        are never written). Without it only G, L, the word-level graph and the final
+        graph stay in memory, which bounds the peak.
 
     Returns:
       A `BuildResult` with the manifest as written.
@@ -479,9 +461,6 @@ def build(project: Project, out_dir: str | os.PathLike,
             # The determinization child may never have more than the whole build.
             opts = dataclasses.replace(opts, determinize_max_memory=min(
                 opts.determinize_max_memory, opts.max_memory))
-            order = stage_order(opts) + (full_stage_order(opts)
-                                         if inputs.cmap is not None else [])
-            guard = MemoryGuard(opts.max_memory, order)
         model, vocabulary = restrict_vocabulary(inputs.model, set(inputs.lexicon.words()),
                                                 opts.grammar.oov_policy)
         started = time.perf_counter()
@@ -491,6 +470,12 @@ def build(project: Project, out_dir: str | os.PathLike,
         lexicon = build_lexicon(inputs.lexicon, inputs.inventory, grammar.word_symbols,
                                 opts.lexicon)
         built["lexicon"] = time.perf_counter() - started
+        if opts.max_memory:
+            tree = opts.word_graph == "tree" and \
+                tree_inputs(lexicon, grammar)[0] is not None
+            order = stage_order(opts, tree) + (full_stage_order(opts)
+                                               if inputs.cmap is not None else [])
+            guard = MemoryGuard(opts.max_memory, order)
 
         def on_stage(record: StageRecord) -> None:
             # The pipeline times only the checks of its input FSTs; add their build.
@@ -509,12 +494,12 @@ def build(project: Project, out_dir: str | os.PathLike,
             if guard is not None:
                 guard(record)
 
-        graph = build_word_graph(lexicon, grammar, opts, on_stage)
+        graph = build_word_graph(lexicon, grammar, opts, on_stage, keep_intermediates)
         input_symbols = lexicon.phone_symbols
         full = None
         if inputs.cmap is not None:
             full = build_full_graph(graph, lexicon, inputs.cmap, context_windows(inputs),
-                                    opts, on_full_stage)
+                                    opts, on_full_stage, keep_intermediates)
         stages = list(graph.stages) + (list(full.stages) if full is not None else [])
         manifest: dict[str, Any] = {
             "format": MANIFEST_FORMAT,
@@ -524,8 +509,7 @@ def build(project: Project, out_dir: str | os.PathLike,
             "input_symbols": INPUT_SYMBOLS_FILE,
             "intermediates": {"grammar": GRAMMAR_FILE, "lexicon": LEXICON_FILE,
                               "wordgraph": GRAPH_FILE},
-            "stages": [_stage_json(s, f) for s, f in zip(stages, _stage_fsts(graph, full,
-                                                                             stages))],
+            "stages": [_stage_json(s) for s in stages],
             "inputs": {"lexicon": _input_record(project.lexicon),
                        "lm": _input_record(project.lm),
                        "phones": _input_record(project.phones)},

@@ -16,6 +16,13 @@ from netbuild import pipeline
 from netbuild.cli import INTERRUPTED, cli
 from netbuild.errors import CheckFailed
 
+
+def _patch_minimize(monkeypatch, stage) -> None:
+    """Replaces the minimization of both word-graph paths (OpenFst's and the tree's)."""
+    monkeypatch.setattr(pipeline, "minimize_stage", stage)
+    monkeypatch.setattr(pipeline.lextree, "minimize_tree_graph", stage)
+
+
 DATA = Path(__file__).resolve().parent / "data" / "cli"
 PROJECT = str(DATA / "project.toml")
 
@@ -189,18 +196,18 @@ def test_build_table_and_progress(built: Path, runner, tmp_path: Path):
     out = tmp_path / "again"
     result = run(runner, "build", "--project", PROJECT, "--out", out)
     assert result.exit_code == 0
-    stages = ["grammar", "lexicon", "compose", "determinize", "minimize", "push"]
+    stages = ["grammar", "lexicon", "compose-determinize", "minimize", "push"]
     progress = [line for line in result.stderr.splitlines() if "states" in line]
     assert [line.split(":")[0] for line in progress] == stages
     for line in progress:
         assert "arcs" in line and " s, peak " in line and "MiB" in line
     table = result.stdout.splitlines()
     assert table[0].split() == ["stage", "states", "arcs", "seconds", "peak"]
-    assert [row.split()[0] for row in table[1:7]] == stages
+    assert [row.split()[0] for row in table[1:1 + len(stages)]] == stages
     assert table[-1] == f"wrote {out}"
     assert any("'is'" in line and "warning" in line for line in result.stderr.splitlines())
     manifest = json.loads((out / "manifest.json").read_text())
-    rows = {row.split()[0]: row.split() for row in table[1:7]}
+    rows = {row.split()[0]: row.split() for row in table[1:1 + len(stages)]}
     for s in manifest["stages"]:
         assert rows[s["name"]][1:3] == [str(s["states"]), str(s["arcs"])]
 
@@ -243,7 +250,7 @@ def test_build_stage_error_keeps_previous(built: Path, runner, tmp_path: Path, m
         from netbuild.errors import StageError
         raise StageError("minimize", "injected failure", "nothing to fix")
 
-    monkeypatch.setattr(pipeline, "minimize_stage", boom)
+    _patch_minimize(monkeypatch, boom)
     result = run(runner, "build", "--project", PROJECT, "--out", out)
     assert result.exit_code == 1
     assert "error: minimize: injected failure; nothing to fix" in result.stderr
@@ -259,7 +266,7 @@ def test_build_interrupt(built: Path, runner, tmp_path: Path, monkeypatch):
     def interrupted(ifst, method="encoded"):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr(pipeline, "minimize_stage", interrupted)
+    _patch_minimize(monkeypatch, interrupted)
     result = run(runner, "build", "--project", PROJECT, "--out", out)
     assert result.exit_code == 130
     assert result.stderr.strip().splitlines()[-1] == INTERRUPTED
@@ -271,7 +278,7 @@ def test_build_internal_check_failure_exits_3(runner, tmp_path: Path, monkeypatc
     def broken(ifst, method="encoded"):
         raise CheckFailed("minimize", "the graph lost a path", "/tmp/evidence.fst")
 
-    monkeypatch.setattr(pipeline, "minimize_stage", broken)
+    _patch_minimize(monkeypatch, broken)
     result = run(runner, "build", "--project", PROJECT, "--out", tmp_path / "o")
     assert result.exit_code == 3
     last = result.stderr.splitlines()[-1]

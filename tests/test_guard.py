@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import gc
+import weakref
+
 import pynini
 import pytest
 import random
@@ -9,7 +12,8 @@ import random
 from wordgraph_helpers import demo_case, lexicon_for, normalized_bigram
 
 from netbuild.errors import DeterminizeError
-from netbuild.guard import determinize_guarded, precheck_determinizable
+from netbuild.guard import FstHandoff, determinize_guarded, precheck_determinizable
+from netbuild.io.fstfile import shared_conversions
 from netbuild.pipeline import compose_stage
 
 _MB = 1024 * 1024
@@ -107,3 +111,63 @@ def test_child_failure_names_likely_lexicon_cause(monkeypatch):
     with pytest.raises(DeterminizeError, match=r"homophones without disambiguation "
                        r"markers \(t u = too, two"):
         determinize_guarded(lg, 300 * _MB, 20.0, lfst=lex.fst, gfst=grammar.fst)
+
+
+class _Tracked(pynini.Fst):
+    """A pynini FST that can be watched with a weak reference (the base type cannot)."""
+
+
+def _tracked_copy(fst: pynini.Fst) -> _Tracked:
+    out = _Tracked()
+    out.add_states(fst.num_states())
+    for s in fst.states():
+        for a in fst.arcs(s):
+            out.add_arc(s, pynini.Arc(a.ilabel, a.olabel, a.weight, a.nextstate))
+        out.set_final(s, fst.final(s))
+    out.set_start(fst.start())
+    out.set_input_symbols(fst.input_symbols())
+    out.set_output_symbols(fst.output_symbols())
+    return out
+
+
+@pytest.mark.parametrize("handed", [True, False])
+def test_handed_over_input_is_dropped_while_the_child_runs(monkeypatch, handed):
+    """Given as an FstHandoff, the input (and the pre-check's shared conversion of it) is
+    freed before the child starts; given plainly, the caller's reference keeps it."""
+    from netbuild import guard
+
+    lex, grammar = demo_case()
+    lg = _tracked_copy(compose_stage(lex.fst, grammar.fst))
+    expected = pynini.determinize(lg)
+    ref = weakref.ref(lg)
+    alive: list[bool] = []
+    popen = guard.subprocess.Popen
+
+    def spy(*args, **kwargs):
+        gc.collect()
+        alive.append(ref() is not None)
+        return popen(*args, **kwargs)
+
+    monkeypatch.setattr(guard.subprocess, "Popen", spy)
+    given = FstHandoff(lg) if handed else lg
+    del lg
+    with shared_conversions():
+        result = determinize_guarded(given, 300 * _MB, 20.0, lfst=lex.fst, gfst=grammar.fst)
+    assert alive == [not handed]
+    # reference: OpenFst equivalence test (fst/equivalent.h) on encoded acceptors
+    mapper = pynini.EncodeMapper("standard", True, True)
+    assert pynini.equivalent(pynini.encode(expected, mapper),
+                             pynini.encode(result.fst, mapper))
+
+
+def test_handed_over_input_still_gets_the_failure_message():
+    """The messages after a failed child name the likely cause without the input."""
+    with pytest.raises(DeterminizeError, match="non-functional"):
+        determinize_guarded(FstHandoff(_non_functional_loop()), 300 * _MB, 20.0)
+
+
+def test_handoff_gives_its_fst_once():
+    handoff = FstHandoff(pynini.accep("a"))
+    assert handoff.take().num_states() == 2
+    with pytest.raises(RuntimeError, match="already taken"):
+        handoff.take()

@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import dataclasses
+
+import gc
 import math
 import random
+import weakref
 
 import pynini
 import pywrapfst
@@ -11,6 +15,9 @@ import pytest
 from wordgraph_helpers import demo_case, lexicon_for, normalized_bigram, to_log
 
 from netbuild.errors import EmptyCompositionError, InputCheckFailed
+from netbuild.footprint import fst_size
+from netbuild.guard import FstHandoff
+from netbuild.io.fstfile import fst_to_arrays
 from netbuild.options import BuildOptions
 from netbuild.pipeline import (Pipeline, Step, StageRecord, build_word_graph,
                                compose_stage, determinize_stage, log_potentials,
@@ -127,24 +134,89 @@ def test_pipeline_runs_checks_after_each_step():
              Step("b", lambda f, d: pynini.determinize(f), [check])]
     records: list[StageRecord] = []
     out, recs, kept = Pipeline(steps).run((pynini.accep("ab") | pynini.accep("ac")).rmepsilon(),
-                                          progress=records.append)
+                                          progress=records.append, keep=True)
     assert seen == ["a", "b"] and [r.name for r in recs] == ["a", "b"] == \
         [r.name for r in records]
     assert set(kept) == {"after_a"}
     assert recs[1].states == out.num_states() == 4
     seen.clear()
-    Pipeline(steps).run(pynini.accep("a"), checks=False)
-    assert seen == []
+    _, _, kept = Pipeline(steps).run(pynini.accep("a"), checks=False)
+    assert seen == [] and kept == {}  # nothing kept unless asked for
 
 
-def test_build_word_graph_records_every_stage():
+class _Tracked(pynini.Fst):
+    """A pynini FST that can be watched with a weak reference (the base type cannot)."""
+
+
+def _tracked_copy(fst: pynini.Fst) -> _Tracked:
+    out = _Tracked()
+    out.add_states(fst.num_states())
+    for s in fst.states():
+        for a in fst.arcs(s):
+            out.add_arc(s, pynini.Arc(a.ilabel, a.olabel, a.weight, a.nextstate))
+        out.set_final(s, fst.final(s))
+    out.set_start(fst.start())
+    return out
+
+
+@pytest.mark.parametrize("hands_off", [False, True])
+@pytest.mark.parametrize("keep", [False, True])
+def test_pipeline_frees_each_result_once_the_next_stage_is_done(hands_off, keep):
+    """The first stage's FST is gone when the second stage's checks run (its conversion,
+    made by the second stage inside the shared block, included) unless it is kept."""
+    refs: list[weakref.ref] = []
+    gone: list[bool] = []
+
+    def first(f, details):
+        t = _tracked_copy(f)
+        refs.append(weakref.ref(t))
+        return t
+
+    def second(given, details):
+        f = given.take() if hands_off else given
+        fst_to_arrays(f)  # a shared conversion of the input
+        return pynini.determinize(f)
+
+    def check(fst, ctx):
+        gc.collect()
+        gone.append(refs[0]() is None)
+
+    steps = [Step("a", first, (), "a"), Step("b", second, [check], "b", hands_off=hands_off)]
+    out, recs, kept = Pipeline(steps).run((pynini.accep("ab") | pynini.accep("ac")).rmepsilon(),
+                                          keep=keep)
+    assert gone == [not keep]
+    assert set(kept) == ({"a", "b"} if keep else set())
+    assert (recs[1].states, recs[1].arcs) == (out.num_states(), num_arcs(out)) == (4, 3)
+
+
+def test_stage_records_carry_the_size_of_their_fst():
+    steps = [Step("a", lambda f, d: f.copy(), (), "a"),
+             Step("b", lambda h, d: pynini.determinize(h.take()), (), "b", hands_off=True)]
+    _, recs, kept = Pipeline(steps).run((pynini.accep("ab") | pynini.accep("ac")).rmepsilon(),
+                                        keep=True)
+    for rec, fst in zip(recs, (kept["a"], kept["b"])):
+        assert rec.size == fst_size(fst)
+        # reference: the bytes OpenFst itself writes for the (vector) FST
+        assert rec.size.vector.disk_bytes == len(fst.write_to_string())
+
+
+_STAGES = {"compose": ["grammar", "lexicon", "compose", "determinize", "minimize", "push"],
+           "tree": ["grammar", "lexicon", "compose-determinize", "minimize", "push"]}
+_KEPT = {"compose": ["grammar", "lexicon", "composed", "determinized", "minimized", "pushed"],
+         "tree": ["grammar", "lexicon", "determinized", "minimized", "pushed"]}
+
+
+@pytest.mark.parametrize("method", ["compose", "tree"])
+def test_build_word_graph_records_every_stage(method):
     lex, grammar = demo_case()
     got: list[StageRecord] = []
-    wg = build_word_graph(lex, grammar, _OPTS, progress=got.append)
+    opts = dataclasses.replace(_OPTS, word_graph=method)
+    wg = build_word_graph(lex, grammar, opts, progress=got.append)
     names = [r.name for r in wg.stages]
-    assert names == ["grammar", "lexicon", "compose", "determinize", "minimize", "push"]
+    assert names == _STAGES[method]
     assert [r.name for r in got] == names
-    assert {"grammar", "lexicon", "composed", "wordgraph"} <= set(wg.intermediates)
+    # Only G, L and the final graph are kept unless the intermediates are asked for.
+    assert set(wg.intermediates) == {"grammar", "lexicon", "wordgraph"}
     assert wg.intermediates["wordgraph"] is wg.fst
     for r in wg.stages:
         assert r.peak_rss_bytes > 0 and r.seconds >= 0
@@ -152,6 +224,26 @@ def test_build_word_graph_records_every_stage():
     assert (final.states, final.arcs) == (wg.fst.num_states(), num_arcs(wg.fst))
     assert wg.fst.properties(pywrapfst.I_DETERMINISTIC, True) == pywrapfst.I_DETERMINISTIC
     assert wg.fst.output_symbols().find("cabin") > 0
+
+
+@pytest.mark.parametrize("method", ["compose", "tree"])
+def test_build_word_graph_keeps_intermediates_on_request(method):
+    lex, grammar = demo_case()
+    opts = dataclasses.replace(_OPTS, word_graph=method)
+    wg = build_word_graph(lex, grammar, opts, keep_intermediates=True)
+    kept = wg.intermediates
+    assert set(kept) == {*_KEPT[method], "wordgraph"}
+    assert kept["pushed"] is wg.fst
+    by_stage = dict(zip(_STAGES[method], _KEPT[method]))
+    for rec in wg.stages:
+        fst = kept[by_stage[rec.name]]
+        assert rec.size == fst_size(fst), rec.name
+        # reference: the bytes OpenFst itself writes for the (vector) FST
+        assert rec.size.vector.disk_bytes == len(fst.write_to_string()), rec.name
+        assert (rec.states, rec.arcs) == (fst.num_states(), num_arcs(fst))
+    # Keeping them changes no record's size.
+    plain = build_word_graph(lex, grammar, opts)
+    assert [r.size for r in plain.stages] == [r.size for r in wg.stages]
 
 
 def test_build_word_graph_without_push_or_checks():

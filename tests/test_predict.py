@@ -119,10 +119,24 @@ def test_guard_estimates_from_the_previous_stage():
     assert need["compose-context"] >= stage_need("compose-context", 400, 900, 0)
 
 
+def test_guard_order_of_the_direct_word_graph():
+    opts = read_project(DEMO).options
+    order = stage_order(opts, tree=True) + full_stage_order(opts)
+    assert order[:5] == ["grammar", "lexicon", "compose-determinize", "minimize", "push"]
+    guard = MemoryGuard(2**40, order)
+    for name, s, a in [("grammar", 100, 400), ("lexicon", 50, 60),
+                       ("compose-determinize", 450, 1000), ("minimize", 400, 900)]:
+        guard(_Record(name, s, a))
+    assert [name for name, _ in guard.checked] == ["compose-determinize", "minimize", "push"]
+    # The fused stage is estimated from G and L together, like the composition.
+    assert dict(guard.checked)["compose-determinize"] >= stage_need("compose", 150, 460, 0)
+
+
 def test_guard_stops_before_the_stage(tmp_path):
     project = apply_overrides(read_project(CLI_PROJECT), max_memory="40MiB")
-    with pytest.raises(StageError, match=r"compose: estimated to need \d+ MiB .* memory "
-                       r"limit is 40 MiB; stopped before starting it; raise --max-memory"):
+    with pytest.raises(StageError, match=r"compose(-determinize)?: estimated to need \d+ MiB "
+                       r".* memory limit is 40 MiB; stopped before starting it; raise "
+                       r"--max-memory"):
         build(project, tmp_path / "out")
     assert not (tmp_path / "out").exists()
 
@@ -136,8 +150,9 @@ def test_guard_cli_message(runner, tmp_path):
 
 
 def test_guard_caps_the_child_and_records_its_peak(tmp_path):
+    # The determinization child exists on the composition path only.
     project = apply_overrides(read_project(CLI_PROJECT), max_memory="3GiB",
-                              determinize_max_memory="8GiB")
+                              determinize_max_memory="8GiB", word_graph="compose")
     result = build(project, tmp_path / "out")
     assert result.manifest["options"]["determinize_max_memory"] == 3 * 2**30
     det = next(s for s in result.manifest["stages"] if s["name"] == "determinize")

@@ -220,7 +220,8 @@ def test_every_setting_has_an_override(inputs: Path):
               "rescale": False, "silence_probability": 0.1, "oov_policy": "fail",
               "push_weights": False, "fst_type": "const", "checks": False,
               "determinize_max_memory": 1000, "determinize_timeout": 5.0,
-              "final_optimize": False, "transition_scale": 0.5, "max_memory": 2000}
+              "final_optimize": False, "transition_scale": 0.5, "max_memory": 2000,
+              "word_graph": "compose"}
     assert set(values) | {"lexicon", "lm", "phones", "context"} == set(SETTINGS)
     out = apply_overrides(None, **values)
     o = out.options
@@ -232,6 +233,7 @@ def test_every_setting_has_an_override(inputs: Path):
             o.determinize_timeout) == (False, "const", False, 1000, 5.0)
     assert (o.final_optimize, o.transition_scale) == (False, 0.5)
     assert o.max_memory == 2000
+    assert o.word_graph == "compose"
 
 
 def test_override_errors_are_collected(tmp_path: Path):

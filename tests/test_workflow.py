@@ -23,7 +23,15 @@ from netbuild.symbols import BACKOFF, SENTENCE_END, SENTENCE_START, disambiguati
 from netbuild.workflow import (atomic_directory, build, check_inputs, load_build,
                                missing_pronunciations)
 
+
+def _patch_minimize(monkeypatch, stage) -> None:
+    """Replaces the minimization of both word-graph paths (OpenFst's and the tree's)."""
+    monkeypatch.setattr(pipeline, "minimize_stage", stage)
+    monkeypatch.setattr(pipeline.lextree, "minimize_tree_graph", stage)
+
+
 DATA = Path(__file__).resolve().parent / "data" / "cli"
+DEMO = Path(__file__).resolve().parents[1] / "examples" / "ropeway" / "project.toml"
 
 
 def snapshot(directory: Path) -> dict[str, bytes]:
@@ -220,7 +228,7 @@ def test_build_writes_directory_and_manifest(first_build):
     assert manifest["intermediates"] == {"grammar": "grammar.fst", "lexicon": "lexicon.fst",
                                          "wordgraph": "graph.fst"}
     names = [s["name"] for s in manifest["stages"]]
-    assert names == ["grammar", "lexicon", "compose", "determinize", "minimize", "push"]
+    assert names == ["grammar", "lexicon", "compose-determinize", "minimize", "push"]
     for s in manifest["stages"]:
         assert {"name", "states", "arcs", "seconds", "peak_rss_bytes"} <= set(s)
         assert s["states"] > 0 and s["arcs"] > 0 and s["peak_rss_bytes"] > 0
@@ -234,6 +242,41 @@ def test_build_writes_directory_and_manifest(first_build):
     assert 0 < manifest["vocabulary"]["removed_unigram_mass"] < 1
     assert manifest["options"]["grammar"]["oov_policy"] == "drop"
     assert manifest["options"]["determinize_max_memory"] == 2**30
+
+
+# The key under which a build kept with keep_intermediates holds each stage's FST.
+_STAGE_FST = {"grammar": "grammar", "lexicon": "lexicon", "compose-determinize": "determinized",
+              "minimize": "minimized", "push": "pushed",
+              "context": "context", "hmm": "hmm", "compose-context": "clg",
+              "compose-hmm": "hclg_raw", "determinize-hmm": "determinized_full",
+              "remove-markers": "unmarked", "minimize-hmm": "minimized_full",
+              "self-loops": "graph"}
+
+
+@pytest.mark.slow
+def test_manifest_bytes_are_the_sizes_of_the_stage_fsts(tmp_path: Path):
+    """The demo's full build: each stage's "bytes" (taken when the stage finished) are
+    the size of that stage's FST, and the same whether or not the FSTs are kept."""
+    from netbuild.footprint import fst_size
+
+    kept = build(read_project(DEMO), tmp_path / "kept", keep_intermediates=True)
+    plain = build(read_project(DEMO), tmp_path / "plain")
+    assert kept.full is not None and plain.full is not None
+    fsts = {**kept.graph.intermediates, **kept.full.intermediates}
+    stages = kept.manifest["stages"]
+    assert [s["name"] for s in stages] == list(_STAGE_FST)
+    for entry in stages:
+        fst = fsts[_STAGE_FST[entry["name"]]]
+        report = fst_size(fst)
+        assert entry["bytes"] == {"const": dataclasses.asdict(report.const),
+                                  "vector": dataclasses.asdict(report.vector)}, entry["name"]
+        # reference: the bytes OpenFst itself writes for the (vector) FST
+        assert entry["bytes"]["vector"]["disk_bytes"] == len(fst.write_to_string())
+        assert (entry["states"], entry["arcs"]) == (fst.num_states(), report.arcs)
+    assert [s["bytes"] for s in plain.manifest["stages"]] == [s["bytes"] for s in stages]
+    # By default only G, L, the word graph, C, H and the final graph stay in memory.
+    assert set(plain.graph.intermediates) == {"grammar", "lexicon", "wordgraph"}
+    assert set(plain.full.intermediates) == {"context", "hmm", "graph"}
 
 
 def test_build_symbol_tables_follow_the_layout(first_build):
@@ -296,10 +339,10 @@ def test_failure_mid_build_keeps_previous(first_build, tmp_path: Path, monkeypat
     seen = []
 
     def boom(ifst, method="encoded"):
-        seen.append(ifst.num_states())
+        seen.append(ifst)
         raise exc
 
-    monkeypatch.setattr(pipeline, "minimize_stage", boom)
+    _patch_minimize(monkeypatch, boom)
     with pytest.raises(type(exc)):
         build(read_project(DATA / "project.toml"), out)
     assert seen  # the failure did happen mid-build, after determinization
@@ -336,7 +379,7 @@ def test_sigterm_mid_build_cleans_up(first_build, tmp_path: Path, monkeypatch):
         os.kill(os.getpid(), signal.SIGTERM)
         raise AssertionError("SIGTERM did not interrupt the build")
 
-    monkeypatch.setattr(pipeline, "minimize_stage", terminated)
+    _patch_minimize(monkeypatch, terminated)
     with pytest.raises(KeyboardInterrupt):
         build(read_project(DATA / "project.toml"), out)
     assert snapshot(out) == before

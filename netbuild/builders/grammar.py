@@ -49,6 +49,7 @@ References:
 
 from __future__ import annotations
 
+import concurrent.futures
 import dataclasses
 import math
 
@@ -173,21 +174,25 @@ def _unique(keys: np.ndarray) -> np.ndarray:
     return keys[keep]
 
 
-def _sort_order(keys: np.ndarray) -> np.ndarray:
-    """A permutation sorting non-negative int64 `keys` (ties in any order).
+def _sort_with_order(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray | None]:
+    """`keys` sorted and the permutation that sorts them (ties in any order); the
+    permutation is None when `keys` are already sorted (then they are returned as is).
 
-    Sorting `key << b | index` as plain int64 is several times faster than argsort; it
-    is used when key and index fit into 63 bits together.
+    For non-negative int64 keys, sorting `key << b | index` as plain int64 is several
+    times faster than argsort, and yields the sorted keys (the high bits) and the
+    permutation (the low bits) without a gather; it is used when key and index fit into
+    63 bits together.
     """
     n = keys.shape[0]
     if keys.dtype == np.int64 and n > 1:
         descents = int(np.count_nonzero(keys[1:] < keys[:-1]))
         if descents == 0:
-            return np.arange(n)
+            return keys, None
         if descents < _FEW_RUNS:
             # A few sorted runs (concatenated sorted parts): the stable sort (timsort)
             # merges them in about linear time.
-            return np.argsort(keys, kind="stable")
+            order = np.argsort(keys, kind="stable")
+            return keys[order], order
     if keys.dtype == np.int64 and n:
         index_bits = max(1, int(n - 1).bit_length())
         top = int(keys.max())
@@ -195,38 +200,86 @@ def _sort_order(keys: np.ndarray) -> np.ndarray:
             packed = keys << index_bits
             packed |= np.arange(n, dtype=np.int64)
             packed.sort()
+            ordered = packed >> index_bits
             packed &= (1 << index_bits) - 1
-            return packed
-    return np.argsort(keys)
+            return ordered, packed
+    order = np.argsort(keys)
+    return keys[order], order
+
+
+def _sort_order(keys: np.ndarray) -> np.ndarray:
+    """A permutation sorting non-negative int64 `keys` (ties in any order)."""
+    order = _sort_with_order(keys)[1]
+    return np.arange(keys.shape[0]) if order is None else order
 
 
 def _unique_inverse(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Sorted unique keys and, for each key, its index among them (as np.unique)."""
     if keys.shape[0] == 0:
         return keys[:0], np.zeros(0, dtype=np.int64)
-    order = _sort_order(keys)
-    ordered = keys[order]
+    ordered, order = _sort_with_order(keys)
     new = np.empty(ordered.shape[0], dtype=bool)
     new[0] = True
     np.not_equal(ordered[1:], ordered[:-1], out=new[1:])
+    rank = np.cumsum(new)
+    rank -= 1
+    if order is None:
+        return ordered[new], rank
     inverse = np.empty(keys.shape[0], dtype=np.int64)
-    inverse[order] = np.cumsum(new) - 1
+    inverse[order] = rank
     return ordered[new], inverse
+
+
+def _merge_keys(ngram_keys: np.ndarray, hole_keys: np.ndarray
+                ) -> tuple[np.ndarray, np.ndarray, np.ndarray, bool]:
+    """The sorted union of a level's n-gram keys and its hole keys (sorted, distinct,
+    none an n-gram), where each n-gram and each hole went in it, and whether the
+    n-gram keys were strictly increasing.
+
+    When they are (an ARPA file in id order), the two sorted lists are merged by the
+    holes' ranks among the n-grams, without a sort.
+    """
+    n = ngram_keys.shape[0]
+    if ngram_keys.dtype != np.int64 or not (
+            n < 2 or bool((ngram_keys[1:] > ngram_keys[:-1]).all())):
+        keys, inverse = _unique_inverse(np.concatenate([ngram_keys, hole_keys]))
+        return keys, inverse[:n], inverse[n:], False
+    size = n + hole_keys.shape[0]
+    hole_pos = np.searchsorted(ngram_keys, hole_keys)
+    hole_pos += np.arange(hole_keys.shape[0], dtype=np.int64)
+    is_ngram = np.ones(size, dtype=bool)
+    is_ngram[hole_pos] = False
+    own = np.flatnonzero(is_ngram)
+    keys = np.empty(size, dtype=np.int64)
+    keys[own] = ngram_keys
+    keys[hole_pos] = hole_keys
+    return keys, own, hole_pos, True
+
+
+def _union(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """The sorted union of two sorted arrays of distinct keys."""
+    if b.shape[0] == 0:
+        return a
+    b = b[_lookup(a, b) < 0]
+    return _merge_keys(a, b)[0] if b.shape[0] else a
 
 
 def _lookup(sorted_keys: np.ndarray, queries: np.ndarray) -> np.ndarray:
     """Index of each query in `sorted_keys`, -1 where absent."""
     if sorted_keys.shape[0] == 0 or queries.shape[0] == 0:
         return np.full(queries.shape[0], -1, dtype=np.int64)
-    # Sorted queries make the binary searches cache-friendly.
-    if _is_sorted(queries):
-        pos = np.searchsorted(sorted_keys, queries)
-    else:
-        order = _sort_order(queries)
-        pos = np.empty(queries.shape[0], dtype=np.int64)
-        pos[order] = np.searchsorted(sorted_keys, queries[order])
+    # Sorted queries make the binary searches cache-friendly; the answers are put back
+    # in the queries' order with one scatter at the end.
+    ordered, order = _sort_with_order(queries)
+    pos = np.searchsorted(sorted_keys, ordered)
     np.minimum(pos, sorted_keys.shape[0] - 1, out=pos)
-    return np.where(sorted_keys[pos] == queries, pos, -1)
+    found = np.where(sorted_keys[pos] == ordered, pos, -1)
+    if order is None:
+        return found
+    del pos, ordered
+    out = np.empty(queries.shape[0], dtype=np.int64)
+    out[order] = found
+    return out
 
 
 @dataclasses.dataclass
@@ -257,19 +310,32 @@ class _Histories:
         # are no n-gram); a hole's own context is a context one level down.
         contexts: list[np.ndarray | None] = [None] * (top + 1)
         holes: list[np.ndarray | None] = [None] * (top + 1)
-        ctx_rows = model.orders[top].words[:, :top] if top >= 1 else None
+        ngram_keys_of: dict[int, np.ndarray] = {}  # level -> its n-grams' keys, file order
+        ctx_pos: dict[int, np.ndarray] = {}  # level -> its contexts' places among them
+        top_inverse = None  # for each top-order n-gram, the index of its context
         for length in range(top, 0, -1):
-            ngram_keys = _sort(pack(model.orders[length - 1].words))
-            ctx_keys = _unique(pack(ctx_rows))
-            if length == 1 and self.bos >= 0:
-                ctx_keys = np.union1d(ctx_keys, np.array([self.bos], dtype=np.int64))
+            ngram_keys = ngram_keys_of[length] = pack(model.orders[length - 1].words)
+            ngram_keys = _sort(ngram_keys)
+            if length == top:
+                top_ctx = pack(model.orders[top].words[:, :top])
+                ctx_keys, top_inverse = _unique_inverse(top_ctx)
+                del top_ctx
+            else:
+                # the contexts of this level's n-grams and those of the holes above
+                ctx_keys = _union(_unique(pack(model.orders[length].words[:, :length])),
+                                  _unique(pack(hole_rows[:, :length])))
+            if length == 1 and self.bos >= 0:  # the <s> history is the start state
+                at = int(np.searchsorted(ctx_keys, self.bos))
+                if at == ctx_keys.shape[0] or ctx_keys[at] != self.bos:
+                    ctx_keys = np.insert(ctx_keys, at, self.bos)
+                    if length == top:
+                        top_inverse[top_inverse >= at] += 1
             contexts[length] = ctx_keys
-            hole_keys = ctx_keys[_lookup(ngram_keys, ctx_keys) < 0]
+            pos = ctx_pos[length] = _lookup(ngram_keys, ctx_keys)
+            hole_keys = ctx_keys[pos < 0]
             holes[length] = hole_keys
             if length > 1:
                 hole_rows = self.packer.unpack(hole_keys, length)
-                ctx_rows = np.concatenate([model.orders[length - 1].words[:, :length - 1],
-                                           hole_rows[:, :length - 1]])
         # Bottom-up: one level per history length, holes filled by the back-off rule.
         self.levels: list[_Level | None] = [None]
         self.filled = 0
@@ -283,11 +349,21 @@ class _Histories:
                 hole_ids = holes[1].astype(np.int64)
                 ctx_ids = contexts[1].astype(np.int64)
             else:
-                keys, inverse = _unique_inverse(np.concatenate([pack(ngrams.words),
-                                                                holes[length]]))
+                keys, own, hole_ids, merged = _merge_keys(ngram_keys_of.pop(length),
+                                                          holes[length])
                 size = keys.shape[0]
-                own, hole_ids = inverse[:len(ngrams)], inverse[len(ngrams):]
-                ctx_ids = _lookup(keys, contexts[length])
+                pos = ctx_pos.pop(length)
+                if merged:
+                    # A context is an n-gram (at `pos` among them, which are in file
+                    # order) or a hole (the holes are the others, in order).
+                    ctx_ids = np.empty(pos.shape[0], dtype=np.int64)
+                    is_ngram = pos >= 0
+                    ctx_ids[is_ngram] = own[pos[is_ngram]]
+                    ctx_ids[~is_ngram] = hole_ids
+                    del is_ngram
+                else:
+                    ctx_ids = _lookup(keys, contexts[length])
+                del pos
             level = _Level(keys, np.full(size, -1, dtype=np.int64),
                            np.zeros(size, dtype=np.float64),
                            np.full(size, -np.inf, dtype=np.float64),
@@ -297,6 +373,12 @@ class _Histories:
             level.ngram[own] = True
             count = ctx_ids.shape[0]
             level.state[ctx_ids] = np.arange(n_states, n_states + count)
+            if length == top:
+                # contexts[top] are the top order's contexts, in key order: so the G
+                # state of each top-order n-gram's context is the first top-level state
+                # plus the context's index
+                self.top_src = top_inverse + n_states
+                top_inverse = None
             n_states += count
             self.levels.append(level)
             if length > 1 and hole_ids.size:
@@ -307,6 +389,22 @@ class _Histories:
         self.num_states = n_states
         self.start = int(self.levels[1].state[self.bos]) if (
             self.bos >= 0 and top >= 1) else 0
+        self.targets: list[tuple[np.ndarray, np.ndarray] | None] = [None]
+
+    def compute_targets(self) -> None:
+        """Computes where each entry of each level leads (see `resolve`): once per entry
+        instead of once per arc that needs it."""
+        for length in range(1, self.order):
+            level = self.levels[length]
+            dest = level.state.copy()
+            folded = np.zeros(dest.shape[0], dtype=np.float64)
+            # (a history leads to itself; only the others need their suffixes)
+            ids = np.flatnonzero(dest < 0)
+            if ids.size:
+                rows = (ids.reshape(-1, 1) if length == 1
+                        else self.packer.unpack(level.keys[ids], length))
+                dest[ids], folded[ids] = self._resolve_rows(rows, ids)
+            self.targets.append((dest, folded))
 
     def _rule_log10(self, rows: np.ndarray) -> np.ndarray:
         """log10 P(last word | the others) by the back-off rule, from the lower levels."""
@@ -342,8 +440,32 @@ class _Histories:
         level = self.levels[length]
         return _lookup(level.keys, self.packer.pack(rows))
 
-    def resolve(self, rows: np.ndarray, ids: np.ndarray | None = None
+    def resolve(self, rows: np.ndarray, found: np.ndarray | None = None
                 ) -> tuple[np.ndarray, np.ndarray]:
+        """Longest suffix of each row that is a history, and the skipped log10 alphas.
+
+        The same as `_resolve_rows`, through the per-entry `targets`: a row found at its
+        level leads where that entry leads; a row that is not there skips nothing and
+        continues with its next shorter suffix. Bit for bit the same sums, as each target
+        was added up in the same order. `found` may give `find(rows)` if known.
+        """
+        m, length = rows.shape
+        if length == 0:
+            return np.zeros(m, dtype=np.int64), np.zeros(m, dtype=np.float64)
+        if found is None:
+            found = self.find(rows)
+        dest_of, folded_of = self.targets[length]
+        ok = found >= 0
+        if ok.all():
+            return dest_of[found], folded_of[found]
+        safe = np.where(ok, found, 0)
+        dest, folded = dest_of[safe], folded_of[safe]
+        rest = np.flatnonzero(~ok)
+        dest[rest], folded[rest] = self.resolve(rows[rest, 1:])
+        return dest, folded
+
+    def _resolve_rows(self, rows: np.ndarray, ids: np.ndarray | None = None
+                      ) -> tuple[np.ndarray, np.ndarray]:
         """Longest suffix of each row that is a history, and the skipped log10 alphas.
 
         `rows` hold tuples of one length L < max order (suffixes of the full tuple are
@@ -420,19 +542,42 @@ def _merge_arcs(num_states: int, radix: int, srcs: list, labels: list, weights: 
             src, label, weight, dst = src[order], label[order], weight[order], dst[order]
             del order
         del key
-        # rank of each arc among its state's arcs in this part
-        first = np.empty(n, dtype=bool)
-        first[0] = True
-        np.not_equal(src[1:], src[:-1], out=first[1:])
-        group_start = np.flatnonzero(first)
-        rank = np.arange(n, dtype=np.int64)
-        rank -= np.repeat(group_start, np.diff(np.append(group_start, n)))
-        pos = fill[src] + rank
-        del rank, first, group_start
+        # Arc i of the part, the k-th of its state s here, goes to fill[s] + k, and
+        # k = i - (the part's arcs of states before s): one gather per arc.
+        counts = np.bincount(src, minlength=num_states)
+        shift = fill.copy()
+        shift[1:] -= np.cumsum(counts[:-1])
+        pos = shift[src]
+        pos += np.arange(n, dtype=np.int64)
+        del shift
         out_src[pos], out_label[pos], out_weight[pos], out_dst[pos] = src, label, weight, dst
-        fill += np.bincount(src, minlength=num_states)
-        del pos, src, label, weight, dst
+        fill += counts
+        del pos, src, label, weight, dst, counts
     return out_src, out_label, out_weight, out_dst
+
+
+def _backoff_arcs(hist: _Histories, backoff_label: int,
+                  parts: dict[tuple[int, int], tuple[np.ndarray, ...]]) -> int:
+    """Adds the back-off arcs of each level's histories to `parts` (keys (1, level));
+    returns how many of them carry folded back-off weights."""
+    folded_backoffs = 0
+    for length in range(1, len(hist.levels)):
+        level = hist.levels[length]
+        ids = np.flatnonzero(level.state >= 0)
+        if ids.size == 0:
+            continue
+        if length == 1:
+            dest = np.zeros(ids.size, dtype=np.int64)
+            folded = np.zeros(ids.size)
+        else:
+            rows = hist.packer.unpack(level.keys[ids], length)
+            dest, folded = hist.resolve(rows[:, 1:])
+        folded_backoffs += int(np.count_nonzero(folded))
+        parts[(1, length)] = (level.state[ids].astype(np.int32),
+                              np.full(ids.size, backoff_label, dtype=np.int32),
+                              (-LN10 * (level.alpha[ids] + folded)).astype(np.float32),
+                              dest.astype(np.int32))
+    return folded_backoffs
 
 
 def build_grammar(model: ArpaModel) -> GrammarResult:
@@ -473,62 +618,60 @@ def build_grammar(model: ArpaModel) -> GrammarResult:
     backoff_label = int(is_word.sum()) + 1
     final = np.full(hist.num_states, np.inf, dtype=np.float32)
 
-    srcs, labels, weights, dsts = [], [], [], []
+    # Arc parts, merged in key order: the word arcs of each order, then the back-off
+    # arcs of each level (a state's back-off arc follows its word arcs).
+    parts: dict[tuple[int, int], tuple[np.ndarray, ...]] = {}
     folded_ngrams = 0
     top = model.max_order
-    for n in range(1, top + 1):
-        if n < top:
-            # Arcs of a lower order come from the level: n-grams and filled holes.
-            level = hist.levels[n]
-            ids = np.flatnonzero(level.ngram)
-            words = (ids.reshape(-1, 1).astype(np.int32) if n == 1
-                     else hist.packer.unpack(level.keys[ids], n))
-            logprob = level.logprob[ids]
-        else:
-            ids = None
-            words = model.orders[n - 1].words
-            logprob = model.orders[n - 1].logprob
-        if words.shape[0] == 0:
-            continue
-        last = words[:, n - 1]
-        if n == 1:
-            src = np.zeros(words.shape[0], dtype=np.int64)
-        else:
-            src = hist.levels[n - 1].state[hist.find(words[:, :n - 1])]
-        ends = last == hist.eos
-        final[src[ends]] = -LN10 * logprob[ends]
-        keep = np.flatnonzero(is_word[last])
-        if n < top:
-            dest, folded = hist.resolve(words[keep], ids[keep])
-        else:
-            dest, folded = hist.resolve(words[keep, 1:])
-        folded_ngrams += int(np.count_nonzero(folded))
-        srcs.append(src[keep].astype(np.int32))
-        labels.append(label_of[last[keep]])
-        weights.append((-LN10 * (logprob[keep] + folded)).astype(np.float32))
-        dsts.append(dest.astype(np.int32))
-        del src, dest, folded, keep
-
-    folded_backoffs = 0
-    for length in range(1, len(hist.levels)):
-        level = hist.levels[length]
-        ids = np.flatnonzero(level.state >= 0)
-        if ids.size == 0:
-            continue
-        if length == 1:
-            rows = ids.reshape(-1, 1).astype(np.int32)
-        else:
-            rows = hist.packer.unpack(level.keys[ids], length)
-        if length == 1:
-            dest = np.zeros(ids.size, dtype=np.int64)
-            folded = np.zeros(ids.size)
-        else:
-            dest, folded = hist.resolve(rows[:, 1:])
-        folded_backoffs += int(np.count_nonzero(folded))
-        srcs.append(level.state[ids].astype(np.int32))
-        labels.append(np.full(ids.size, backoff_label, dtype=np.int32))
-        weights.append((-LN10 * (level.alpha[ids] + folded)).astype(np.float32))
-        dsts.append(dest.astype(np.int32))
+    with concurrent.futures.ThreadPoolExecutor(max_workers=1) as pool:
+        # The largest single step, finding the suffix of every top-order n-gram among
+        # the histories (a sort and binary searches), runs in a second thread while the
+        # other arcs are built: numpy releases the GIL in both.
+        top_found = None
+        if top >= 3 and len(model.orders[top - 1]):
+            top_found = pool.submit(hist.find, model.orders[top - 1].words[:, 1:])
+        hist.compute_targets()
+        folded_backoffs = _backoff_arcs(hist, backoff_label, parts)
+        for n in range(1, top + 1):
+            if n < top:
+                # Arcs of a lower order come from the level: n-grams and filled holes.
+                level = hist.levels[n]
+                ids = np.flatnonzero(level.ngram)
+                words = (ids.reshape(-1, 1).astype(np.int32) if n == 1
+                         else hist.packer.unpack(level.keys[ids], n))
+                logprob = level.logprob[ids]
+            else:
+                ids = None
+                words = model.orders[n - 1].words
+                logprob = model.orders[n - 1].logprob
+            if words.shape[0] == 0:
+                continue
+            last = words[:, n - 1]
+            if n == 1:
+                src = np.zeros(words.shape[0], dtype=np.int64)
+            elif n == top:
+                src = hist.top_src
+            else:
+                src = hist.levels[n - 1].state[hist.find(words[:, :n - 1])]
+            ends = last == hist.eos
+            final[src[ends]] = -LN10 * logprob[ends]
+            keep = np.flatnonzero(is_word[last])
+            if n < top:
+                dest, folded = (a[ids[keep]] for a in hist.targets[n])
+            else:
+                found = None if top_found is None else top_found.result()[keep]
+                top_found = None
+                dest, folded = hist.resolve(words[keep, 1:], found)
+                del found
+            folded_ngrams += int(np.count_nonzero(folded))
+            parts[(0, n)] = (src[keep].astype(np.int32), label_of[last[keep]],
+                             (-LN10 * (logprob[keep] + folded)).astype(np.float32),
+                             dest.astype(np.int32))
+            del src, dest, folded, keep
+    srcs, labels, weights, dsts = [], [], [], []
+    for key in sorted(parts):
+        for out, a in zip((srcs, labels, weights, dsts), parts.pop(key)):
+            out.append(a)
 
     # Drop the loops' last temporaries: `level` would keep a whole level of `hist`
     # alive through the FST construction, which is where the memory peaks.

@@ -51,18 +51,45 @@ from .disambiguation import MarkerUse, assign_markers, homophone_groups
 
 
 
+@dataclasses.dataclass(frozen=True)
+class Pronunciations:
+    """The label strings L spells, as flat arrays (for building det(L∘G) directly).
+
+    Pronunciation i reads `labels[offsets[i]:offsets[i] + lengths[i]]` (its phones, then
+    its marker if it has one), writes word `words[i]` and costs `costs[i]`. `silence`
+    is the optional-silence phone label (None: no optional silence), inserted with
+    probability `silence_probability`; `backoff_label` is the input label of the
+    back-off pass-through. `closure` is False for the single-word lexicon.
+    """
+
+    labels: np.ndarray  # int32, all strings one after the other
+    lengths: np.ndarray  # int64 per pronunciation
+    words: np.ndarray  # int32 word id per pronunciation
+    costs: np.ndarray  # float64 -ln p per pronunciation
+    silence: int | None
+    silence_probability: float
+    backoff_label: int
+    closure: bool
+
+    @property
+    def offsets(self) -> np.ndarray:
+        return np.cumsum(self.lengths) - self.lengths
+
+
 @dataclasses.dataclass
 class LexiconResult:
     """The lexicon transducer and what went into it.
 
     `markers` lists every pronunciation given a marker; `skipped_words` the lexicon
-    words (first-appearance order) missing from the word table, left out of L.
+    words (first-appearance order) missing from the word table, left out of L;
+    `pronunciations` the strings L spells as arrays (None for an L made elsewhere).
     """
 
     fst: pynini.Fst
     phone_symbols: pynini.SymbolTable
     markers: list[MarkerUse]
     skipped_words: list[str]
+    pronunciations: Pronunciations | None = None
 
     @property
     def num_markers(self) -> int:
@@ -233,7 +260,10 @@ def _build(lexicon: Lexicon, inventory: PhoneInventory | None,
     fst.set_input_symbols(phone_symbols)
     fst.set_output_symbols(word_symbols)
     fst.arcsort("olabel")
-    return LexiconResult(fst, phone_symbols, markers, list(skipped))
+    spelled = Pronunciations(flat, lengths.astype(np.int64), words, costs,
+                             phone_index[silence] if silence else None, s, backoff_id,
+                             closure)
+    return LexiconResult(fst, phone_symbols, markers, list(skipped), spelled)
 
 
 def _arcs(flat: np.ndarray, lengths: np.ndarray, words: np.ndarray, costs: np.ndarray,

@@ -131,9 +131,16 @@ class _Vocab:
         n = len(self.words)
         keys = np.zeros((n, _MAX_KEY_BYTES), np.uint8)
         lens = np.fromiter(map(len, self.words), np.int64, n)
-        for i, w in enumerate(self.words):
-            if len(w) <= _MAX_KEY_BYTES:
-                keys[i, :len(w)] = np.frombuffer(w, np.uint8)
+        # every word's bytes into its row at once (longer words stay all zero: they are
+        # found through `ids`)
+        short = lens <= _MAX_KEY_BYTES
+        blob = np.frombuffer(b"".join(w for w, s in zip(self.words, short.tolist()) if s),
+                             np.uint8)
+        if blob.size:
+            slens = lens[short]
+            first = np.repeat(np.cumsum(slens) - slens, slens)
+            keys[np.repeat(np.flatnonzero(short), slens),
+                 np.arange(blob.size) - first] = blob
         x = keys.view(np.uint64)
         cols = [np.ascontiguousarray(x[:, j]) for j in range(x.shape[1])]
         h = _hash_cols(cols)
@@ -176,16 +183,33 @@ _LENMASK = np.array([(1 << (8 * i)) - 1 for i in range(8)] + [2**64 - 1], np.uin
 _COLMASK = [_LENMASK[np.clip(np.arange(64) - 8 * j, 0, 8)] for j in range(_MAX_KEY_BYTES // 8)]
 
 
-def _unaligned_u64(padded: bytes) -> np.ndarray:
-    """A uint64 view starting at every byte offset of `padded` (little-endian)."""
-    return np.ndarray(shape=(len(padded) - 7,), dtype="<u8", buffer=padded, strides=(1,))
+def _windows(padded: bytes, width: int) -> np.ndarray:
+    """A view of the `width` bytes starting at every byte offset of `padded`.
+
+    The items are void scalars: indexing copies `width` bytes per index, several
+    times faster than gathering from an unaligned uint64 view, which numpy reads
+    element by element.
+    """
+    return np.ndarray(shape=(len(padded) - width + 1,), dtype=f"V{width}", buffer=padded,
+                      strides=(1,))
 
 
-def _gather(u64: np.ndarray, starts: np.ndarray, lens: np.ndarray, width: int
+def _token_words(padded: bytes, starts: np.ndarray, lens: np.ndarray, width: int
+                 ) -> np.ndarray:
+    """The first `width` bytes of each token as (k, width // 8) little-endian uint64
+    words, zero past the token's end."""
+    x = _windows(padded, width)[starts].view("<u8").reshape(-1, width // 8)
+    lc = np.minimum(lens, 63)
+    for j in range(width // 8):
+        x[:, j] &= _COLMASK[j][lc]
+    return x
+
+
+def _gather(padded: bytes, starts: np.ndarray, lens: np.ndarray, width: int
             ) -> list[np.ndarray]:
     """The bytes of each token as width // 8 uint64 columns, zero past the token's end."""
-    lc = np.minimum(lens, 63)
-    return [u64[starts + 8 * j] & _COLMASK[j][lc] for j in range(width // 8)]
+    x = _token_words(padded, starts, lens, width)
+    return list(np.ascontiguousarray(x.T))
 
 
 _P10I = 10 ** np.arange(19, dtype=np.int64)
@@ -197,7 +221,7 @@ _S8, _S16 = np.uint64(8), np.uint64(16)
 _U10, _U100, _U10K, _ONE = np.uint64(10), np.uint64(100), np.uint64(10000), np.uint64(1)
 
 
-def _plain_decimals(win: np.ndarray, starts: np.ndarray, lens: np.ndarray
+def _plain_decimals(padded: bytes, starts: np.ndarray, lens: np.ndarray
                     ) -> tuple[np.ndarray, np.ndarray]:
     """Values of tokens ``[+-]digits[.digits]`` of at most 16 bytes and 15 digits.
 
@@ -207,11 +231,7 @@ def _plain_decimals(win: np.ndarray, starts: np.ndarray, lens: np.ndarray
     digits are combined eight at a time inside 64-bit words (each step joins
     neighbouring lanes: d*10 + d', then pairs*100, then quads*10**4).
     """
-    k = len(starts)
-    lc = np.minimum(lens, 63)
-    x = np.empty((k, 2), np.uint64)
-    x[:, 0] = win[starts] & _COLMASK[0][lc]
-    x[:, 1] = win[starts + 8] & _COLMASK[1][lc]
+    x = _token_words(padded, starts, lens, 16)
     b = x.view(np.uint8)  # (k, 16): the token's bytes, zero past its end
     d = b - _B48
     isd = d < 10
@@ -247,7 +267,7 @@ def _plain_decimals(win: np.ndarray, starts: np.ndarray, lens: np.ndarray
     return out, ok
 
 
-def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
+def _parse_numbers(padded: bytes, starts: np.ndarray, lens: np.ndarray,
                    seg: bytes) -> np.ndarray | None:
     """Parses decimal tokens exactly; None if any token is not a finite number.
 
@@ -256,7 +276,7 @@ def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
     """
     if len(starts) == 0:
         return np.empty(0)
-    out, ok = _plain_decimals(win, starts, lens)
+    out, ok = _plain_decimals(padded, starts, lens)
     slow = np.flatnonzero(~ok)
     if len(slow):
         try:
@@ -273,7 +293,7 @@ def _parse_numbers(win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
     return out
 
 
-def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray,
+def _lookup(vocab: _Vocab, padded: bytes, starts: np.ndarray, lens: np.ndarray,
             seg: bytes) -> np.ndarray | None:
     """Word ids of the tokens; None if any token is not a known word."""
     k = len(starts)
@@ -284,7 +304,7 @@ def _lookup(vocab: _Vocab, win: np.ndarray, starts: np.ndarray, lens: np.ndarray
         return None
     maxlen = int(lens.max())
     width = min(-(-maxlen // 8) * 8, _MAX_KEY_BYTES)
-    x = _gather(win, starts, lens, width)
+    x = _gather(padded, starts, lens, width)
     h = _hash_cols(x)
     cand = table[h >> shift]
     np.maximum(cand, 0, out=cand)
@@ -451,6 +471,30 @@ def _chunks(f: BinaryIO, path: str, problems: list[Problem]) -> Iterator[bytes]:
         yield buf[: cut + 1]
 
 
+def _next_header(chunk: bytes, pos: int) -> int:
+    """The offset of the first line after `pos` that starts with a backslash (a section
+    header), or len(chunk); `pos` is the start of a line that is not a header.
+
+    Searches for the backslash alone (rare in n-gram lines, so the search runs at memchr
+    speed) and checks that a line feed precedes it.
+    """
+    while True:
+        at = chunk.find(b"\\", pos)
+        if at < 0:
+            return len(chunk)
+        if chunk[at - 1] == 0x0A:
+            return at
+        pos = at + 1
+
+
+def _count_lines(seg: bytes) -> int:
+    """The number of line feeds in `seg` (numpy's count releases the GIL and beats
+    bytes.count for large pieces)."""
+    if len(seg) < 4096:
+        return seg.count(b"\n")
+    return int(np.count_nonzero(np.frombuffer(seg, np.uint8) == 10))
+
+
 class _ArpaReader:
     def __init__(self, path: str) -> None:
         self.path = path
@@ -546,11 +590,10 @@ class _ArpaReader:
                     self._after_end(chunk[pos:])
                     return
                 continue
-            nxt = chunk.find(b"\n\\", pos)
-            end = n if nxt < 0 else nxt + 1
+            end = _next_header(chunk, pos)
             seg = chunk[pos:end]
             self._body(seg, self.line + 1)
-            self.line += seg.count(b"\n")
+            self.line += _count_lines(seg)
             self.byte += end - pos
             pos = end
 
@@ -851,18 +894,61 @@ def _line_counts(starts: np.ndarray, ends: np.ndarray, nl: np.ndarray, order: in
     return filled, c
 
 
-def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
-    """Vectorised parse of a piece of n-gram lines; None when anything is irregular.
+def _field_counts_ok(c: np.ndarray, order: int, top: bool) -> bool:
+    """True if every line has as many fields as an n-gram line of `order` may have."""
+    if top:
+        return bool((c == order + 1).all())
+    return bool(((c == order + 1) | (c == order + 2)).all())
 
-    Returns (word ids (k, order) or, for 1-grams, the (starts, lens) of the words,
-    logprob, backoff, relative line numbers of the rows). Runs in worker threads: it
-    only reads `vocab`.
+
+# The field separators of the common layout (space, tab, LF), as byte -> True.
+_SEPARATOR = np.zeros(256, bool)
+_SEPARATOR[[9, 10, 32]] = True
+
+
+def _single_separated(body: np.ndarray, order: int, top: bool):
+    """Token spans of a piece in the common layout, in one pass over its bytes.
+
+    Applies when every field is followed by exactly one space, tab or line feed: no
+    blank lines (except at the end of the piece, before the next section), no leading,
+    trailing or repeated whitespace, no other bytes below 33 (so no CR, no control
+    bytes). Then the bytes <= 32 are exactly the separators, each token runs from one
+    separator to the next, and a line's field count is the number of separators up to
+    its line feed. Returns None when the piece is laid out in any other way (the
+    general tokenizer handles it) or has a line of the wrong length.
     """
-    n = len(seg)
-    padded = seg + b"\0" * 40
-    a = np.frombuffer(padded, np.uint8)
+    end = len(body)
+    while end > 1 and body[end - 1] == 10 and body[end - 2] == 10:
+        end -= 1  # blank lines at the end hold no rows
+    sep = np.flatnonzero(body[:end] <= 32)
+    if not len(sep) or sep[0] == 0:
+        return None
+    kinds = body[sep]
+    if kinds[-1] != 10 or not _SEPARATOR[kinds].all():
+        return None
+    if (sep[1:] - sep[:-1] == 1).any():
+        return None
+    line_ends = np.flatnonzero(kinds == 10)  # index of each line's last separator
+    c = np.empty(len(line_ends), np.int64)
+    c[0] = line_ends[0] + 1
+    np.subtract(line_ends[1:], line_ends[:-1], out=c[1:])
+    if not _field_counts_ok(c, order, top):
+        return None
+    starts = np.empty(len(sep), np.int64)
+    starts[0] = 0
+    np.add(sep[:-1], 1, out=starts[1:])
+    off = np.empty(len(line_ends), np.int64)
+    off[0] = 0
+    np.add(line_ends[:-1], 1, out=off[1:])
+    return starts, sep, np.arange(len(c)), c, off
+
+
+def _tokens(body: np.ndarray, order: int, top: bool):
+    """Token spans of a piece in any layout: (starts, ends, non-blank line indices,
+    fields per line, index of each line's first token); None if a line has the
+    wrong number of fields."""
+    n = len(body)
     nw = np.zeros(n + 2, bool)
-    body = a[:n]
     control = np.subtract(body, 14, dtype=np.uint8) < 18  # bytes 14..31
     control |= body < 9
     if control.any():
@@ -878,24 +964,41 @@ def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
     if counted is None:
         return None
     filled, c = counted
-    off = np.cumsum(c) - c
+    return starts, ends, filled, c, np.cumsum(c) - c
+
+
+def _fast_rows(seg: bytes, order: int, top: bool, vocab: _Vocab | None):
+    """Vectorised parse of a piece of n-gram lines; None when anything is irregular.
+
+    Returns (word ids (k, order) or, for 1-grams, the (starts, lens) of the words,
+    logprob, backoff, relative line numbers of the rows). Runs in worker threads: it
+    only reads `vocab`.
+    """
+    n = len(seg)
+    padded = seg + b"\0" * 40
+    body = np.frombuffer(padded, np.uint8, count=n)
+    tokens = _single_separated(body, order, top)
+    if tokens is None:
+        tokens = _tokens(body, order, top)
+        if tokens is None:
+            return None
+    starts, ends, filled, c, off = tokens
     lens = ends - starts
-    win = _unaligned_u64(padded)
-    lp = _parse_numbers(win, starts[off], lens[off], seg)
+    lp = _parse_numbers(padded, starts[off], lens[off], seg)
     if lp is None or (lp > 0).any():
         return None
     bo = np.zeros(len(c))
     has_bo = np.flatnonzero(c == order + 2)
     if len(has_bo):
         bidx = off[has_bo] + order + 1
-        vals = _parse_numbers(win, starts[bidx], lens[bidx], seg)
+        vals = _parse_numbers(padded, starts[bidx], lens[bidx], seg)
         if vals is None:
             return None
         bo[has_bo] = vals
     widx = (off[:, None] + np.arange(1, order + 1)).ravel()
     if vocab is None:
         return (starts[widx], lens[widx]), lp, bo, filled
-    ids = _lookup(vocab, win, starts[widx], lens[widx], seg)
+    ids = _lookup(vocab, padded, starts[widx], lens[widx], seg)
     if ids is None:
         return None
     return ids.reshape(-1, order), lp, bo, filled
@@ -917,48 +1020,100 @@ def _row_codes(tables: list[np.ndarray], radix: int) -> list[np.ndarray]:
     return np.split(code, np.cumsum(sizes)[:-1])
 
 
+def _plain_codes(rows: np.ndarray, radix: int) -> tuple[np.ndarray, np.ndarray]:
+    """The codes of the rows' histories (all columns but the last) and of the rows, as
+    plain radix numbers; `radix ** rows.shape[1]` must stay below `_HOLE_CAP`."""
+    pre = rows[:, 0].astype(np.int64)
+    for j in range(1, rows.shape[1] - 1):
+        pre *= radix
+        pre += rows[:, j]
+    code = pre * radix
+    code += rows[:, -1]
+    return pre, code
+
+
+def _absent(sorted_keys: np.ndarray, queries: np.ndarray, queries_sorted: bool
+            ) -> np.ndarray:
+    """True for each query that is not among `sorted_keys`.
+
+    Sorted queries (the histories of an n-gram list in id order) repeat in runs; each
+    run is looked up once.
+    """
+    if len(sorted_keys) == 0:
+        return np.ones(len(queries), bool)
+    if queries_sorted and len(queries) > 1:
+        new = np.empty(len(queries), bool)
+        new[0] = True
+        np.not_equal(queries[1:], queries[:-1], out=new[1:])
+        first = np.flatnonzero(new)
+        del new
+        distinct = queries[first]
+        pos = np.minimum(np.searchsorted(sorted_keys, distinct), len(sorted_keys) - 1)
+        absent = sorted_keys[pos] != distinct
+        if not absent.any():
+            return np.zeros(len(queries), bool)
+        return np.repeat(absent, np.diff(np.append(first, len(queries))))
+    pos = np.minimum(np.searchsorted(sorted_keys, queries), len(sorted_keys) - 1)
+    return sorted_keys[pos] != queries
+
+
 def _check_tables(model: ArpaModel, reader: _ArpaReader) -> None:
     """Duplicates (errors), history holes and misplaced sentence markers (warnings)."""
     radix = max(len(model.vocab), 1)
     index = model.word_index()
     bos, eos = index.get(SENTENCE_START), index.get(SENTENCE_END)
-    # order -> (codes in file order, the same sorted); kept for the hole check when
-    # the codes are plain radix numbers (no compaction), as prefixes are then code // radix
-    plain: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+    # order -> codes, sorted; kept for the hole check of the next order when the codes
+    # are plain radix numbers (no compaction): a history's code is then its n-gram's
+    plain: dict[int, np.ndarray] = {}
+    holes: list[tuple[NgramTable, int, np.ndarray]] = []  # (table, lower order, missing)
     for t in model.orders[1:]:
         if len(t) == 0:
             continue
-        (code,) = _row_codes([t.words], radix)
-        # ARPA files usually list n-grams in id order; then there is nothing to sort
-        s = code if (code[1:] >= code[:-1]).all() else np.sort(code)
         if radix ** t.order < _HOLE_CAP:
-            plain[t.order] = (code, s)
-        if (s[1:] == s[:-1]).any():
-            order = np.argsort(code, kind="stable")
-            sc = code[order]
-            dup = np.flatnonzero(sc[1:] == sc[:-1]) + 1
-            for j in dup[:_MAX_PROBLEMS].tolist():
-                first, second = sorted((int(t.lines[order[j - 1]]), int(t.lines[order[j]])))
-                words = " ".join(model.vocab[w] for w in t.words[order[j]])
-                reader.error(second, f"duplicate {t.order}-gram '{words}' (first at line {first})",
-                             "remove one of the two lines")
-    for lower, t in zip(model.orders, model.orders[1:]):
-        if len(t) == 0 or t.order == 2:  # a 1-word history is a known word, hence listed
+            pre, code = _plain_codes(t.words, radix)
+        else:
+            (code,) = _row_codes([t.words], radix)
+            pre = None
+        # ARPA files usually list n-grams in id order: strictly increasing codes are
+        # sorted and free of duplicates, and there is nothing to sort
+        presorted = len(code) < 2 or bool((code[1:] > code[:-1]).all())
+        if presorted:
+            s = code
+        else:
+            presorted = bool((code[1:] >= code[:-1]).all())
+            s = code if presorted else np.sort(code)
+            if (s[1:] == s[:-1]).any():
+                order = np.argsort(code, kind="stable")
+                sc = code[order]
+                dup = np.flatnonzero(sc[1:] == sc[:-1]) + 1
+                for j in dup[:_MAX_PROBLEMS].tolist():
+                    first, second = sorted((int(t.lines[order[j - 1]]),
+                                            int(t.lines[order[j]])))
+                    words = " ".join(model.vocab[w] for w in t.words[order[j]])
+                    reader.error(second, f"duplicate {t.order}-gram '{words}' (first at "
+                                 f"line {first})", "remove one of the two lines")
+                del order, sc
+        if pre is not None:
+            plain[t.order] = s
+        del code
+        if t.order == 2:  # a 1-word history is a known word, hence listed
             continue
-        if t.order in plain and lower.order in plain:
-            pre = plain[t.order][0] // radix
-            low_sorted = plain[lower.order][1]
+        lower = model.orders[t.order - 2]
+        if pre is not None and lower.order in plain:
+            missing = _absent(plain[lower.order], pre, presorted)
         else:
             pre, low = _row_codes([t.words[:, :-1], lower.words], radix)
-            low_sorted = np.sort(low)
-        pos = np.minimum(np.searchsorted(low_sorted, pre), max(len(low_sorted) - 1, 0))
-        missing = low_sorted[pos] != pre if len(low_sorted) else np.ones(len(pre), bool)
+            missing = _absent(np.sort(low), pre, False)
+        holes.append((t, lower.order, missing))
+        del pre
+    for t, lower_order, missing in holes:
         k = int(missing.sum())
         if k:
             first = int(t.lines[missing].min())
             reader.warning(first, f"{k} {t.order}-gram(s) have a history that is not listed "
-                           f"among the {lower.order}-grams (first at line {first})",
+                           f"among the {lower_order}-grams (first at line {first})",
                            "such holes are legal; the history backs off with weight 1")
+    del holes, plain
     if bos is None or eos is None:
         missing = " and ".join(w for w, i in ((SENTENCE_START, bos), (SENTENCE_END, eos))
                                if i is None)
@@ -971,7 +1126,8 @@ def _check_tables(model: ArpaModel, reader: _ArpaReader) -> None:
         if bos is not None:
             bad |= t.words[:, -1] == bos
         if eos is not None:
-            bad |= (t.words[:, :-1] == eos).any(1)
+            for j in range(t.order - 1):
+                bad |= t.words[:, j] == eos
         if bad.any():
             first = int(t.lines[bad].min())
             reader.warning(first, f"{int(bad.sum())} {t.order}-gram(s) predict <s> or continue "

@@ -6,11 +6,16 @@
 - `fst_to_arrays(fst)`: the reverse, in bulk, by reading the bytes of a const conversion.
 - `shared_conversions()`, `shared_arrays(fst)`: a block in which repeated conversions of
   one FST are made once (the pipeline opens one per stage).
+- `forget_shared(fst)`, `retain_shared(fst)`: drop one FST's conversion from the open
+  block, or every one but `fst`'s, so the block no longer keeps those FSTs or their
+  arrays alive.
 - `write_fst(fst, path, fst_type)`: writes a vector or const FST file atomically.
 
 Python loops calling `add_arc` cost about a microsecond per arc; writing the bytes that
-OpenFst's own reader expects and handing them to `pynini.Fst.read_from_string` moves the
-per-arc work into numpy and C++.
+OpenFst's own reader expects and letting OpenFst read them moves the per-arc work into
+numpy and C++. Large images are written into an anonymous in-memory file that OpenFst
+opens like any file (`read_from_string` would first copy the bytes twice, which costs
+more than everything else); small ones go through `pynini.Fst.read_from_string`.
 
 The const layout (ConstFst with 32-bit offsets, arc type "standard" or "log"; all values
 little-endian, no padding unless the header's aligned flag is set, which we never set and
@@ -53,6 +58,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import mmap
 import os
 import struct
 import tempfile
@@ -65,8 +71,8 @@ import pywrapfst
 
 from ..errors import InputError, StageError
 
-__all__ = ["FstArrays", "arrays_to_fst", "fst_to_arrays", "shared_arrays",
-           "shared_conversions", "write_fst"]
+__all__ = ["FstArrays", "arrays_to_fst", "forget_shared", "fst_to_arrays", "retain_shared",
+           "share_arrays", "shared_arrays", "shared_conversions", "write_fst"]
 
 FstFileType = Literal["vector", "const"]
 ArcType = Literal["standard", "log"]
@@ -134,9 +140,23 @@ def _bad(message: str) -> StageError:
                       "this is a caller bug: pass arrays of equal length and valid ids")
 
 
-def _same_as_previous(src: np.ndarray) -> np.ndarray:
-    """For arcs grouped by state: True where arc i+1 leaves the same state as arc i."""
-    return src[1:] == src[:-1]
+def _label_bits(labels: np.ndarray, same: np.ndarray, sorted_bit: int, unsorted_bit: int,
+                det_bit: int, nondet_bit: int) -> int:
+    """Sortedness and determinism bits of one label side (arcs grouped by state).
+
+    `same[i]` says arc i + 1 leaves the state of arc i. Labels are non-negative int32,
+    so neighbour comparisons need no wider type.
+    """
+    if labels.shape[0] < 2:
+        return sorted_bit | det_bit
+    ascending = labels[1:] >= labels[:-1]
+    ascending |= ~same
+    if not ascending.all():
+        return unsorted_bit
+    # Sorted: equal labels on one state are adjacent, so determinism is one more pass.
+    repeat = labels[1:] == labels[:-1]
+    repeat &= same
+    return sorted_bit | (nondet_bit if repeat.any() else det_bit)
 
 
 def _known_properties(num_states: int, start: int, final_weights: np.ndarray,
@@ -144,25 +164,22 @@ def _known_properties(num_states: int, start: int, final_weights: np.ndarray,
                       weight: np.ndarray, dst: np.ndarray) -> int:
     """Returns the property bits established from the arrays (arcs grouped by state)."""
     props = _EXPANDED
-    props |= _ACCEPTOR if np.array_equal(ilabel, olabel) else _NOT_ACCEPTOR
+    acceptor = ilabel is olabel or np.array_equal(ilabel, olabel)
+    props |= _ACCEPTOR if acceptor else _NOT_ACCEPTOR
     ieps = ilabel == 0
-    oeps = olabel == 0
+    oeps = ieps if acceptor else olabel == 0
     props |= _I_EPSILONS if ieps.any() else _NO_I_EPSILONS
     props |= _O_EPSILONS if oeps.any() else _NO_O_EPSILONS
     props |= _EPSILONS if (ieps & oeps).any() else _NO_EPSILONS
-    same = _same_as_previous(src)
-    for labels, sorted_bit, unsorted_bit, det_bit, nondet_bit in (
-            (ilabel, _I_LABEL_SORTED, _NOT_I_LABEL_SORTED, _I_DETERMINISTIC,
-             _NON_I_DETERMINISTIC),
-            (olabel, _O_LABEL_SORTED, _NOT_O_LABEL_SORTED, _O_DETERMINISTIC,
-             _NON_O_DETERMINISTIC)):
-        step = labels[1:].astype(np.int64) - labels[:-1]
-        if (step[same] >= 0).all():
-            # Sorted: equal labels on one state are adjacent, so determinism is cheap.
-            props |= sorted_bit
-            props |= nondet_bit if (step[same] == 0).any() else det_bit
-        else:
-            props |= unsorted_bit
+    same = src[1:] == src[:-1]
+    ibits = _label_bits(ilabel, same, _I_LABEL_SORTED, _NOT_I_LABEL_SORTED,
+                        _I_DETERMINISTIC, _NON_I_DETERMINISTIC)
+    props |= ibits
+    if acceptor:  # the output side has the same bits, one position up
+        props |= ibits << 2
+    else:
+        props |= _label_bits(olabel, same, _O_LABEL_SORTED, _NOT_O_LABEL_SORTED,
+                             _O_DETERMINISTIC, _NON_O_DETERMINISTIC)
     finite = final_weights[np.isfinite(final_weights)]
     weighted = bool((weight != 0).any()) or bool((finite != 0).any())
     props |= _WEIGHTED if weighted else _UNWEIGHTED
@@ -175,6 +192,11 @@ def _known_properties(num_states: int, start: int, final_weights: np.ndarray,
     return props
 
 
+def _as(a: np.ndarray, dtype: type) -> np.ndarray:
+    """`a` as a contiguous array of `dtype` (the array itself when it already is one)."""
+    return np.ascontiguousarray(a, dtype=dtype)
+
+
 def arrays_to_fst(num_states: int, start: int, final_weights: np.ndarray,
                   src: np.ndarray, ilabel: np.ndarray, olabel: np.ndarray,
                   weight: np.ndarray, dst: np.ndarray,
@@ -183,16 +205,15 @@ def arrays_to_fst(num_states: int, start: int, final_weights: np.ndarray,
                   arc_type: ArcType = "standard") -> pynini.Fst:
     """Constructively builds a mutable FST from flat arrays, in bulk.
 
-    Writes OpenFst's const binary layout with numpy and reads it back with
-    `pynini.Fst.read_from_string` (which yields a mutable vector FST). Arcs may come in
-    any order; they are grouped by `src` with a stable sort, so the arcs of one state
-    keep their given order.
+    Writes OpenFst's const binary layout with numpy and has OpenFst read it and convert
+    it to a mutable vector FST (see `_read_image`). Arcs may come in any order; they are
+    grouped by `src` with a stable sort, so the arcs of one state keep their given order.
 
     Args:
       num_states: number of states; ids are 0 .. num_states - 1.
       start: the start state, or -1 for none.
       final_weights: (num_states,) final weights; inf marks a non-final state.
-      src, ilabel, olabel, weight, dst: one entry per arc (labels >= 0).
+      src, ilabel, olabel, weight, dst: one entry per arc (labels 0 .. 2**31 - 1).
       isymbols, osymbols: symbol tables to attach (not checked against the labels).
       arc_type: "standard" (tropical) or "log"; both store float32 weights.
 
@@ -204,6 +225,7 @@ def arrays_to_fst(num_states: int, start: int, final_weights: np.ndarray,
     """
     num_states = int(num_states)
     start = int(start)
+    acceptor = ilabel is olabel  # (one array for both sides: checked and copied once)
     final_weights = np.asarray(final_weights, dtype=np.float32).ravel()
     src = np.asarray(src).ravel()
     n = src.shape[0]
@@ -222,48 +244,126 @@ def arrays_to_fst(num_states: int, start: int, final_weights: np.ndarray,
         if src.min() < 0 or src.max() >= num_states or dst.min() < 0 \
                 or dst.max() >= num_states:
             raise _bad("an arc refers to a state outside 0 .. num_states - 1")
-        if ilabel.min() < 0 or olabel.min() < 0:
-            raise _bad("negative labels are not allowed")
+        for labels in (ilabel,) if acceptor else (ilabel, olabel):
+            if labels.min() < 0:
+                raise _bad("negative labels are not allowed")
+            if labels.max() >= 2**31:
+                raise _bad("a label does not fit the 32-bit layout")
     if arc_type not in ("standard", "log"):
         raise _bad(f"arc type '{arc_type}' is not supported; use 'standard' or 'log'")
-    src = src.astype(np.int32, copy=False)
-    if n and not (np.diff(src) >= 0).all():
+    src, dst, ilabel = _as(src, np.int32), _as(dst, np.int32), _as(ilabel, np.int32)
+    olabel = ilabel if acceptor else _as(olabel, np.int32)
+    weight = _as(weight, np.float32)
+    if n > 1 and not (src[1:] >= src[:-1]).all():
         order = np.argsort(src, kind="stable")
-        src, ilabel, olabel, weight, dst = (a[order] for a in
-                                            (src, ilabel, olabel, weight, dst))
+        src, ilabel, weight, dst = (a[order] for a in (src, ilabel, weight, dst))
+        olabel = ilabel if acceptor else olabel[order]
+        del order
     props = _known_properties(num_states, start, final_weights, src, ilabel, olabel,
                               weight, dst)
     header = b"".join([
         struct.pack("<i", _MAGIC), _string("const"), _string(arc_type),
         struct.pack("<ii", _CONST_VERSION, 0), struct.pack("<Q", props),
         struct.pack("<qqq", start, num_states, n)])
-    body_start = len(header)
-    arcs_start = body_start + num_states * STATE_RECORD.itemsize
-    buf = bytearray(arcs_start + n * ARC_RECORD.itemsize)
-    buf[:body_start] = header
-    states = np.frombuffer(buf, dtype=STATE_RECORD, count=num_states, offset=body_start)
-    arcs = np.frombuffer(buf, dtype=ARC_RECORD, count=n, offset=arcs_start)
-    states["final"] = final_weights
+    arcs_start = len(header) + num_states * STATE_RECORD.itemsize
+    size = arcs_start + n * ARC_RECORD.itemsize
     narcs = np.bincount(src, minlength=num_states)
-    states["narcs"] = narcs
-    pos = np.zeros(num_states, dtype=np.int64)
-    if num_states > 1:
-        np.cumsum(narcs[:-1], out=pos[1:])
-    states["pos"] = pos
-    states["niepsilons"] = np.bincount(src[ilabel == 0], minlength=num_states)
-    states["noepsilons"] = np.bincount(src[olabel == 0], minlength=num_states)
-    arcs["ilabel"] = ilabel
-    arcs["olabel"] = olabel
-    arcs["weight"] = weight
-    arcs["nextstate"] = dst
-    del states, arcs  # release the buffer views before handing the bytes over
-    fst = pynini.Fst.read_from_string(buf)
-    del buf
+    with _image(size) as (buf, path):
+        buf[:len(header)] = header
+        states = np.frombuffer(buf, dtype=STATE_RECORD, count=num_states,
+                               offset=len(header))
+        arcs = np.frombuffer(buf, dtype=ARC_RECORD, count=n, offset=arcs_start)
+        states["final"] = final_weights
+        states["narcs"] = narcs
+        pos = np.zeros(num_states, dtype=np.int64)
+        if num_states > 1:
+            np.cumsum(narcs[:-1], out=pos[1:])
+        states["pos"] = pos
+        del pos, narcs
+        # (the buffer starts zeroed: epsilon counts are written only where there are any)
+        for field, labels in (("niepsilons", ilabel), ("noepsilons", olabel)):
+            eps = labels == 0
+            if eps.any():
+                states[field] = np.bincount(src[eps], minlength=num_states)
+            del eps
+        arcs["ilabel"] = ilabel
+        arcs["olabel"] = olabel
+        arcs["weight"] = weight
+        arcs["nextstate"] = dst
+        del states, arcs  # release the buffer views before OpenFst reads the image
+        fst = _read_image(buf, path)
+    if not isinstance(fst, pynini.Fst):
+        # (converted once the image is gone: it and the vector FST are never both held)
+        fst = pynini.Fst.from_pywrapfst(fst)
     if isymbols is not None:
         fst.set_input_symbols(isymbols)
     if osymbols is not None:
         fst.set_output_symbols(osymbols)
     return fst
+
+
+# Images of at least this many bytes are handed to OpenFst as an in-memory file (see
+# `_image`); smaller ones through `read_from_string`, whose fixed cost is lower.
+_FILE_IMAGE_BYTES = 1 << 20
+
+
+@contextlib.contextmanager
+def _image(size: int) -> Iterator[tuple[bytearray | mmap.mmap, str | None]]:
+    """A writable buffer of `size` bytes for an FST image, and a path OpenFst can open.
+
+    `pynini.Fst.read_from_string` copies its argument into a C++ string and again into a
+    string stream (growing it by doubling) before OpenFst reads it: on a 120 MB image
+    that is about 0.5 s, nearly all of it page faults on the fresh copies. So large
+    images are written straight into the pages of an anonymous in-memory file
+    (`os.memfd_create`; Linux), which OpenFst opens by its /proc path and reads like
+    any file. The mapping counts in the process's resident memory as the buffer did.
+    Elsewhere, for small images, or if the in-memory file cannot be made, the buffer
+    is a bytearray and the path None.
+    """
+    fd = -1
+    buf: bytearray | mmap.mmap | None = None
+    if size >= _FILE_IMAGE_BYTES and hasattr(os, "memfd_create") \
+            and os.path.isdir("/proc/self/fd"):
+        try:
+            fd = os.memfd_create("netbuild-fst", getattr(os, "MFD_CLOEXEC", 0))
+            os.ftruncate(fd, size)
+            buf = mmap.mmap(fd, size)
+        except (OSError, ValueError):
+            if fd >= 0:
+                os.close(fd)
+            fd, buf = -1, None
+    if buf is None:
+        yield bytearray(size), None
+        return
+    try:
+        yield buf, f"/proc/self/fd/{fd}"
+    finally:
+        try:
+            buf.close()
+        except BufferError:  # a view survived an error; the mapping goes with it
+            pass
+        os.close(fd)
+
+
+def _read_image(buf: bytearray | mmap.mmap, path: str | None
+                ) -> pynini.Fst | pywrapfst.Fst:
+    """Has OpenFst read the const image in `buf` (also at `path` if not None).
+
+    Returns the const FST OpenFst read from `path`, or, without a path, the mutable
+    vector FST `read_from_string` makes of the bytes.
+    """
+    if path is not None:
+        try:
+            const = pywrapfst.Fst.read(path)
+        except pywrapfst.FstError:
+            const = None  # (not expected) read the bytes instead
+        if const is not None:
+            if const.fst_type() != "const":
+                raise StageError("arrays_to_fst", f"OpenFst read a {const.fst_type()} FST "
+                                 "from a const image", "this is a netbuild bug")
+            return const
+        return pynini.Fst.read_from_string(buf[:])
+    return pynini.Fst.read_from_string(buf)
 
 
 # Conversions shared inside a `shared_conversions` block: id -> (fst, fingerprint, arrays).
@@ -293,9 +393,21 @@ def shared_conversions() -> Iterator[None]:
             _shared = None
 
 
+# Bits OpenFst works out and stores when asked (`properties(mask, True)`, as the checks
+# do) without the FST changing; any change to the FST clears them, so leaving them out
+# of the fingerprint loses no change and keeps a check from converting again.
+_COMPUTED_BITS = (pywrapfst.ACCESSIBLE | pywrapfst.NOT_ACCESSIBLE | pywrapfst.COACCESSIBLE
+                  | pywrapfst.NOT_COACCESSIBLE | pywrapfst.CYCLIC | pywrapfst.ACYCLIC
+                  | pywrapfst.INITIAL_CYCLIC | pywrapfst.INITIAL_ACYCLIC
+                  | pywrapfst.TOP_SORTED | pywrapfst.NOT_TOP_SORTED
+                  | pywrapfst.I_DETERMINISTIC | pywrapfst.NON_I_DETERMINISTIC
+                  | pywrapfst.O_DETERMINISTIC | pywrapfst.NON_O_DETERMINISTIC
+                  | pywrapfst.STRING | pywrapfst.NOT_STRING)
+
+
 def _fingerprint(fst: pynini.Fst | pywrapfst.Fst) -> tuple:
-    return (fst.num_states(), fst.properties(pywrapfst.FST_PROPERTIES, False),
-            fst.start())
+    props = fst.properties(pywrapfst.FST_PROPERTIES, False) & ~_COMPUTED_BITS
+    return (fst.num_states(), props, fst.start())
 
 
 def shared_arrays(fst: pynini.Fst | pywrapfst.Fst) -> FstArrays | None:
@@ -307,6 +419,48 @@ def shared_arrays(fst: pynini.Fst | pywrapfst.Fst) -> FstArrays | None:
     if entry is None or entry[0] is not fst or entry[1] != _fingerprint(fst):
         return None
     return entry[2]
+
+
+def forget_shared(fst: pynini.Fst | pywrapfst.Fst) -> None:
+    """Drops the conversion of `fst` from the open `shared_conversions` block, if any.
+
+    The block holds each FST it converted (and its arrays) until it ends; a stage whose
+    input is no longer needed calls this so that the input can be freed before the
+    checks of the output run.
+    """
+    if _shared is not None:
+        entry = _shared.get(id(fst))
+        if entry is not None and entry[0] is fst:
+            del _shared[id(fst)]
+
+
+def retain_shared(fst: pynini.Fst | pywrapfst.Fst) -> None:
+    """Drops every conversion of the open `shared_conversions` block except `fst`'s.
+
+    The pipeline calls it when a stage returns: the checks look only at the stage's
+    result, so its input and any temporary the stage converted can be freed.
+    """
+    if _shared is not None:
+        for key in [k for k, entry in _shared.items() if entry[0] is not fst]:
+            del _shared[key]
+
+
+def share_arrays(fst: pynini.Fst | pywrapfst.Fst, arrays: FstArrays) -> None:
+    """Registers `arrays` as the conversion of `fst` in the open `shared_conversions`
+    block (no-op outside one), so checks of an FST built from arrays need not convert
+    it back. The caller vouches that `arrays` is exactly what `fst_to_arrays` would
+    return: arcs grouped by state in the FST's order (as `arrays_to_fst` keeps them),
+    float32 weights, symbol tables as on `fst`."""
+    if _shared is None:
+        return
+    isyms, osyms = fst.input_symbols(), fst.output_symbols()
+    shared = dataclasses.replace(
+        arrays, isymbols=None if isyms is None else isyms.copy(),
+        osymbols=None if osyms is None else osyms.copy(), arc_type=fst.arc_type())
+    for a in (shared.final_weights, shared.src, shared.ilabel, shared.olabel,
+              shared.weight, shared.dst):
+        a.flags.writeable = False
+    _shared[id(fst)] = (fst, _fingerprint(fst), shared)
 
 
 def fst_to_arrays(fst: pynini.Fst | pywrapfst.Fst) -> FstArrays:

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from unittest import mock
+
 import numpy as np
 import pynini
 import pytest
@@ -157,3 +159,111 @@ def test_many_arcs_in_bulk():
     order = np.argsort(src, kind="stable")
     np.testing.assert_array_equal(a.dst, dst[order])
     np.testing.assert_array_equal(a.weight, w[order])
+
+
+# Large images reach OpenFst through an in-memory file, small ones through
+# read_from_string (netbuild.io.fstfile._image); these tests send every size through
+# each route and compare with the arc-by-arc construction.
+@pytest.fixture
+def file_route(monkeypatch):
+    import netbuild.io.fstfile as fstfile
+
+    if not hasattr(fstfile.os, "memfd_create"):
+        pytest.skip("no in-memory files on this platform")
+    monkeypatch.setattr(fstfile, "_FILE_IMAGE_BYTES", 0)
+
+
+@given(fst_arrays())
+def test_file_route_equals_arc_by_arc_construction(args):
+    # reference: OpenFst's text printer and its own property computation
+    import netbuild.io.fstfile as fstfile
+
+    if not hasattr(fstfile.os, "memfd_create"):
+        pytest.skip("no in-memory files on this platform")
+    with mock.patch.object(fstfile, "_FILE_IMAGE_BYTES", 0), \
+            mock.patch.object(fstfile, "_read_image", wraps=fstfile._read_image) as read:
+        built = arrays_to_fst(*args)
+    assert read.call_args.args[1] is not None  # OpenFst was given a path
+    slow = python_fst(*args)
+    assert built.fst_type() == "vector"
+    assert built.num_states() == slow.num_states() and built.start() == slow.start()
+    assert str(built) == str(slow)
+    known = built.properties(CHECKED, False)
+    assert known & slow.properties(CHECKED, True) == known
+
+
+def test_file_route_edges(file_route):
+    words = make_symbol_table("words", ["cable", "car", "summit"])
+    empty = arrays_to_fst(0, -1, np.zeros(0), [], [], [], [], [])
+    assert empty.num_states() == 0 and empty.start() == -1
+    lone = arrays_to_fst(3, 1, np.array([np.inf, 2.0, np.inf]), [], [], [], [], [],
+                         isymbols=words, osymbols=words)
+    assert lone.num_states() == 3 and float(lone.final(1)) == 2.0
+    assert lone.input_symbols().find("summit") == 3
+    assert lone.output_symbols().find(2) == "car"
+    log = arrays_to_fst(2, 0, np.array([np.inf, 0.0]), [0], [1], [1], [0.5], [1],
+                        arc_type="log")
+    assert log.arc_type() == "log" and fst_to_arrays(log).weight.tolist() == [0.5]
+
+
+def test_without_in_memory_files_the_bytes_are_read(monkeypatch):
+    import netbuild.io.fstfile as fstfile
+
+    def unavailable(*args):
+        raise OSError("no memfd here")
+
+    monkeypatch.setattr(fstfile, "_FILE_IMAGE_BYTES", 0)
+    monkeypatch.setattr(fstfile.os, "memfd_create", unavailable, raising=False)
+    args = (3, 0, np.array([np.inf, np.inf, 0.5], np.float32), [0, 0, 1], [2, 1, 3],
+            [2, 1, 0], [0.25, 1.0, 0.0], [1, 2, 2])
+    assert str(arrays_to_fst(*args)) == str(python_fst(*args))
+
+
+# Complementary property pairs the header always settles, and the determinism pair it
+# settles on a label-sorted side.
+PAIRS = [(P.ACCEPTOR, P.NOT_ACCEPTOR), (P.EPSILONS, P.NO_EPSILONS),
+         (P.I_EPSILONS, P.NO_I_EPSILONS), (P.O_EPSILONS, P.NO_O_EPSILONS),
+         (P.I_LABEL_SORTED, P.NOT_I_LABEL_SORTED), (P.O_LABEL_SORTED, P.NOT_O_LABEL_SORTED),
+         (P.WEIGHTED, P.UNWEIGHTED), (P.TOP_SORTED, P.NOT_TOP_SORTED)]
+
+
+@given(fst_arrays())
+def test_header_settles_the_pairs_it_can(args):
+    # reference: OpenFst's property computation (Fst.properties with test=True)
+    built = arrays_to_fst(*args)
+    computed = python_fst(*args).properties(CHECKED, True)
+    known = built.properties(CHECKED, False)
+    for pair in PAIRS:
+        both = pair[0] | pair[1]
+        assert known & both == computed & both, pair
+    for sorted_bit, det in ((P.I_LABEL_SORTED, P.I_DETERMINISTIC | P.NON_I_DETERMINISTIC),
+                            (P.O_LABEL_SORTED, P.O_DETERMINISTIC | P.NON_O_DETERMINISTIC)):
+        if known & sorted_bit == sorted_bit:
+            assert known & det == computed & det
+
+
+def test_a_large_image_round_trips():
+    # 80,000 arcs (1.3 MB): over the size at which the in-memory file is used
+    rng = np.random.default_rng(11)
+    n, m = 5000, 80_000
+    src = np.sort(rng.integers(0, n, m))
+    il = rng.integers(0, 400, m)
+    ol = rng.integers(0, 400, m)
+    w = rng.random(m).astype(np.float32)
+    dst = rng.integers(0, n, m)
+    fin = np.where(rng.random(n) < 0.2, rng.random(n), np.inf).astype(np.float32)
+    words = make_symbol_table("words", [f"w{i}" for i in range(1, 400)])
+    f = arrays_to_fst(n, 3, fin, src, il, ol, w, dst, isymbols=words, osymbols=words)
+    assert f.fst_type() == "vector" and f.start() == 3
+    assert f.input_symbols().find("w399") == 399
+    a = fst_to_arrays(f)
+    for got, want in ((a.src, src), (a.ilabel, il), (a.olabel, ol), (a.weight, w),
+                      (a.dst, dst), (a.final_weights, fin)):
+        np.testing.assert_array_equal(got, want)
+    f.add_arc(0, pynini.Arc(1, 1, 0.5, 1))  # mutable, like any vector FST
+    assert f.num_arcs(0) == a.num_arcs - int(np.count_nonzero(src)) + 1
+
+
+def test_labels_beyond_32_bits_are_refused():
+    with pytest.raises(StageError, match="does not fit the 32-bit layout"):
+        arrays_to_fst(2, 0, np.zeros(2), [0], [2**31], [1], [0.0], [1])

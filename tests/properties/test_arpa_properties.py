@@ -148,8 +148,86 @@ def test_vectorised_numbers_equal_float(tokens):
         pos += len(t) + 1
     starts = np.array(starts, np.int64)
     lens = np.array([len(t) for t in tokens], np.int64)
-    values = arpa._parse_numbers(arpa._unaligned_u64(padded), starts, lens, seg)
+    values = arpa._parse_numbers(padded, starts, lens, seg)
     expected = [float(t) for t in tokens]
     assert values is not None
     assert values.tolist() == expected
     assert np.signbit(values).tolist() == [np.signbit(x) for x in expected]
+
+
+SEPARATORS = st.sampled_from(["\t", " ", "  ", " \t", "\t\t"])
+
+
+@given(models(), st.data())
+def test_any_whitespace_layout_reads_the_same(tmp_path_factory, model, data):
+    # Each line of a written model laid out anew: other separators, leading or trailing
+    # blanks, CR before LF, blank lines. Pieces in the plain layout take the one-pass
+    # tokenizer, the others the general one; both must give the same records.
+    root = tmp_path_factory.mktemp("layout")
+    write_arpa(model, root / "plain.arpa")
+    lines = []
+    for line in (root / "plain.arpa").read_text(encoding="utf-8").split("\n"):
+        fields = line.split()
+        if len(fields) < 2 or line.startswith("ngram"):
+            lines.append(line)
+            continue
+        sep = data.draw(st.lists(SEPARATORS, min_size=len(fields) - 1,
+                                 max_size=len(fields) - 1))
+        text = fields[0] + "".join(s + f for s, f in zip(sep, fields[1:]))
+        text = data.draw(st.sampled_from(["", " ", "\t"])) + text
+        text += data.draw(st.sampled_from(["", " ", "\r"]))
+        if data.draw(st.booleans()):
+            text += "\n"  # a blank line after this one
+        lines.append(text)
+    (root / "laid_out.arpa").write_text("\n".join(lines), encoding="utf-8")
+    a, b = read_arpa(root / "plain.arpa"), read_arpa(root / "laid_out.arpa")
+    assert a.vocab == b.vocab
+    for x, y in zip(a.orders, b.orders, strict=True):
+        assert x.words.tolist() == y.words.tolist()
+        assert x.logprob.tobytes() == y.logprob.tobytes()
+        assert x.backoff.tobytes() == y.backoff.tobytes()
+
+
+def test_backslashes_inside_words_are_no_headers(tmp_path):
+    # Only a backslash at the start of a line begins a section header.
+    text = ("\\data\\\nngram 1=4\nngram 2=3\n\n\\1-grams:\n-1.0\t</s>\n-99\t<s>\t-0.5\n"
+            "-0.5\tsum\\mit\t-0.1\n-0.7\tri\\dge\n\n\\2-grams:\n-0.2\t<s> sum\\mit\n"
+            "-0.3\tsum\\mit ri\\dge\n-0.4\tri\\dge </s>\n\n\\end\\\n")
+    path = tmp_path / "m.arpa"
+    path.write_text(text, encoding="utf-8")
+    m = read_arpa(path)
+    assert m.vocab == ["</s>", "<s>", "sum\\mit", "ri\\dge"]
+    assert m.orders[1].words.tolist() == [[1, 2], [2, 3], [3, 0]]
+    assert m.orders[1].lines.tolist() == [12, 13, 14]
+
+
+WORDS_IN_LINE = st.sampled_from(["cabin", "ridge", "é"])
+
+
+@given(st.integers(1, 3), st.booleans(), st.integers(0, 2), st.booleans(), st.data())
+def test_one_pass_tokenizer_agrees_with_the_general_one(order, top, blank_end, plain, data):
+    # reference: the general tokenizer (whitespace runs as bytes.split() sees them)
+    import netbuild.io.arpa as arpa
+
+    seps = st.sampled_from(["\t", " "]) if plain else SEPARATORS
+    ends = st.just("") if plain else st.sampled_from(["", " ", "\r", "\n"])
+    text = ""
+    for _ in range(data.draw(st.integers(1, 12))):
+        # mostly lines of the right length; now and then one word too many or too few
+        n = order + data.draw(st.sampled_from([0, 0, 0, 0, 0, 0, 1, -1]))
+        words = data.draw(st.lists(WORDS_IN_LINE, min_size=max(n, 1), max_size=max(n, 1)))
+        fields = [data.draw(st.sampled_from(["-0.5", "-1.25", "-99"])), *words]
+        if not top and data.draw(st.booleans()):
+            fields.append("-0.1")
+        sep = data.draw(st.lists(seps, min_size=len(fields) - 1, max_size=len(fields) - 1))
+        text += fields[0] + "".join(s + f for s, f in zip(sep, fields[1:]))
+        text += data.draw(ends) + "\n"
+    body = np.frombuffer((text + "\n" * blank_end).encode(), np.uint8)
+    general = arpa._tokens(body, order, top)
+    fast = arpa._single_separated(body, order, top)
+    if fast is None:
+        assert not plain or general is None
+    else:
+        assert general is not None
+        for x, y in zip(fast, general, strict=True):
+            assert np.asarray(x).tolist() == np.asarray(y).tolist()

@@ -22,8 +22,10 @@ import pynini
 import pytest
 from wordgraph_helpers import lexicon_for, normalized_bigram, to_log
 
+import dataclasses
+
 from netbuild.options import BuildOptions
-from netbuild.pipeline import build_word_graph
+from netbuild.pipeline import build_word_graph, compose_stage
 
 _OPTS = BuildOptions(determinize_max_memory=2 * 1024**3, determinize_timeout=120)
 _DEMO = os.path.join(os.path.dirname(__file__), "..", "..", "examples", "ropeway",
@@ -41,11 +43,14 @@ def _generated_case(num_words: int, seed: int):
     return lexicon_for(prons, words), normalized_bigram(words, rng, followers=4)
 
 
+@pytest.mark.parametrize("method", ["tree", "compose"])
 @pytest.mark.parametrize("num_words,seed", [(30, 1), (120, 2)])
-def test_generated_word_graph_equals_composition(num_words, seed):
+def test_generated_word_graph_equals_composition(num_words, seed, method):
     lex, grammar = _generated_case(num_words, seed)
-    wg = build_word_graph(lex, grammar, _OPTS)
-    composed = wg.intermediates["composed"]
+    wg = build_word_graph(lex, grammar, dataclasses.replace(_OPTS, word_graph=method))
+    assert [r.name for r in wg.stages][2] == ("compose-determinize" if method == "tree"
+                                              else "compose")
+    composed = compose_stage(lex.fst, grammar.fst)
     assert wg.fst.num_states() > 0
     assert pynini.randequivalent(to_log(composed), to_log(wg.fst), npath=300, seed=11,
                                  delta=1e-2, max_length=60)
@@ -62,8 +67,9 @@ def test_equivalence_test_can_fail():
     for i, a in enumerate(arcs):
         w = float(a.weight) + (1.0 if i == 0 else 0.0)
         broken.add_arc(s, pynini.Arc(a.ilabel, a.olabel, w, a.nextstate))
-    assert not pynini.randequivalent(to_log(wg.intermediates["composed"]), to_log(broken),
-                                     npath=300, seed=11, delta=1e-2, max_length=60)
+    composed = compose_stage(lex.fst, grammar.fst)
+    assert not pynini.randequivalent(to_log(composed), to_log(broken), npath=300, seed=11,
+                                     delta=1e-2, max_length=60)
 
 
 @pytest.mark.slow
@@ -74,7 +80,8 @@ def test_ropeway_demo_word_graph_equals_composition(tmp_path):
     from netbuild.workflow import build
 
     result = build(read_project(_DEMO), tmp_path / "demo")
-    composed = result.graph.intermediates["composed"]
+    kept = result.graph.intermediates
+    composed = compose_stage(kept["lexicon"], kept["grammar"])
     final = result.graph.fst
     assert final.num_states() < composed.num_states()
     assert pynini.randequivalent(to_log(composed), to_log(final), npath=500, seed=3,
