@@ -356,6 +356,8 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
     w_src, w_word, w_cost, target = w_src[live], w_word[live], w_cost[live], target[live]
     if len(w_src) == 0:
         raise _empty()
+    shift = min(sil.silence, sil.no_silence) if branch and not np.any(target == start) \
+        else 0.0
     by_word = np.argsort(spelled.words, kind="stable")
     word_first = np.zeros(len(n_prons_of) + 1, dtype=np.int64)
     np.cumsum(n_prons_of, out=word_first[1:])
@@ -498,14 +500,17 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
     root_parts.append((e_q[at_root], e_il[at_root], e_ol[at_root], e_w[at_root],
                        dst[at_root]))
 
-    # Boundary arcs: each tree root's arcs from B(q) and (no silence) from BS(q).
+    # Boundary arcs: each tree root's arcs from B(q) and (no silence) from BS(q). As in
+    # a determinization, the cheaper of silence / no silence is paid on the arc into
+    # BS(q) and BS(q)'s own arcs carry only the difference (`shift`); the start state
+    # BS(q0) then pays it on its own arcs (unless words also end in it: shift 0).
     r_q, r_il, r_ol, r_w, r_dst = (np.concatenate(x) for x in zip(*root_parts))
-    for roots, extra in ((root_b, 0.0), (root_bs, sil.no_silence if copies else 0.0)):
+    for roots, extra in ((root_b, 0.0), (root_bs, sil.no_silence - shift if copies else 0.0)):
         src = roots[r_q]
         ok = src >= 0
         parts.append((src[ok], r_il[ok], r_ol[ok], r_w[ok] + extra, r_dst[ok]))
     bo_label = spelled.backoff_label
-    for offset, extra in ((0, 0.0), (ng, sil.no_silence if copies else None)):
+    for offset, extra in ((0, 0.0), (ng, sil.no_silence - shift if copies else None)):
         if extra is None or (offset and not copies):
             continue
         src, dst = bid[bo_src + offset], bid[bo_dst]
@@ -516,14 +521,22 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
         src, dst = bid[ng:], bid[:ng]
         ok = (src >= 0) & (dst >= 0)
         parts.append((src[ok], np.full(int(ok.sum()), spelled.silence),
-                      np.zeros(int(ok.sum())), np.full(int(ok.sum()), sil.silence), dst[ok]))
+                      np.zeros(int(ok.sum())), np.full(int(ok.sum()), sil.silence - shift),
+                      dst[ok]))
 
     num_states = next_id
     final = np.full(num_states, np.inf)
     final[bid[:ng][keep[:ng]]] = finals[keep[:ng]]
     if copies:
-        final[bid[ng:][keep[ng:]]] = finals[keep[ng:]] + sil.no_silence
+        final[bid[ng:][keep[ng:]]] = finals[keep[ng:]] + sil.no_silence - shift
     src, il, ol, w, dst = (np.concatenate([np.asarray(p[i]) for p in parts]) for i in range(5))
+    if shift:
+        is_bs = np.zeros(num_states, dtype=bool)
+        is_bs[bid[ng:][keep[ng:]]] = True
+        w = w.astype(np.float64) + np.where(is_bs[dst], shift, 0.0)
+        first = bid[start]
+        w[src == first] += shift
+        final[first] += shift
     # (state, input label) is unique in a deterministic machine: one key sorts both.
     order = np.argsort(src.astype(np.int64) * (int(il.max(initial=0)) + 1) + il)
     arcs = FstArrays(num_states, int(bid[start]), final.astype(np.float32),
@@ -531,6 +544,9 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
                      ol[order].astype(np.int32), w[order].astype(np.float32),
                      dst[order].astype(np.int32))
     nodes = np.flatnonzero(keep)
+    if shift:  # BS states' arcs carry `shift` less (the start state's do not)
+        node_dist[0] = np.where((nodes >= ng) & (nodes != start), node_dist[0] - shift,
+                                node_dist[0])
     return TreeGraph(arcs, nb, nodes % ng, nodes >= ng,
                      np.concatenate(heights).astype(np.int64),
                      np.concatenate(node_dist) if settled else None, inputs, n, n_tree,
