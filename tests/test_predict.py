@@ -67,11 +67,13 @@ def test_demo_prediction_contains_the_true_size(tmp_path):
 
 
 def test_word_level_prediction_contains_the_true_size(tmp_path):
-    """A word-level project (no context map), with explicit shares."""
+    """A word-level project (no context map): the word-level graph is built in full, so
+    the prediction is the real size."""
     project = read_project(CLI_PROJECT)
     prediction = predict_graph_size(project, fractions=(0.2, 0.4, 0.6))
     result = build(apply_overrides(project, checks=False), tmp_path / "out")
     final = result.manifest["stages"][-1]  # reference: the real build
+    assert (prediction.states, prediction.arcs) == (final["states"], final["arcs"])
     assert prediction.states_low <= final["states"] <= prediction.states_high
     assert prediction.arcs_low <= final["arcs"] <= prediction.arcs_high
     const, vector = footprints(prediction.states, prediction.arcs, prediction.states)
