@@ -17,7 +17,13 @@ Stages, each followed by its checks (unless ``opts.checks`` is False):
    3.6 s (max stochastic deviation 7.04), from the unpushed one 69 697 / 170 496 in
    3.1 s (6.94). The difference is small either way; the pushed LG is used so the
    graph a decoder reads carries the word-level push.
-3. ``compose-hmm``: H∘CLG.
+3. ``compose-hmm``: H∘CLG, built directly by substituting each model arc of CLG with
+   its chain of arc kinds (`netbuild.builders.hmm_expand`: `expand_arrays` on CLG's
+   arrays, CLG dropped, then `expanded_fst`; the same machine as OpenFst's composition
+   up to state numbering); OpenFst's composition when H is not of `build_hmm`'s shape
+   or CLG has an input label H does not read (``details["method"]``: "expansion" or
+   "composition"). compose-hmm at 20k / 1M: 53.3 s → 7.8 s (plus 8.1 s of checks, which
+   now pay for the connectivity DFS), stage peak 3,316 → 1,929 MiB (docs/performance.md).
 4. ``determinize-hmm``: guarded transducer determinization (`netbuild.guard`); with the
    delay of C and the markers still present the input is functional and
    determinizable.
@@ -33,9 +39,10 @@ tropical-equivalent (demo: 96 627 states / 238 879 arcs in 1.7 s, against
 
 Memory: every stage gets its input handed over (`netbuild.guard.FstHandoff`) and drops it
 when it returns, before its output is measured and checked; the determinization drops it
-once the child has its copy. Unless `keep_intermediates` is asked for, at most a stage's
-input and output (with their array conversions) are alive at a time, besides C, H, G, L
-and the word-level graph.
+once the child has its copy, minimize-hmm once its encoded copy is made, and self-loops
+once its arrays are read (its result's arrays are then its checks' shared conversion).
+Unless `keep_intermediates` is asked for, at most a stage's input and output (with their
+array conversions) are alive at a time, besides C, H, G, L and the word-level graph.
 """
 
 from __future__ import annotations
@@ -52,10 +59,11 @@ from . import checks as chk
 from .builders.context import build_context
 from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
                            make_model_symbols)
+from .builders.hmm_expand import expand_arrays, expanded_fst, model_chains
 from .errors import EmptyCompositionError, StageError
 from .guard import FstHandoff
 from .io.context_map import ContextMap
-from .io.fstfile import forget_shared
+from .io.fstfile import forget_shared, fst_to_arrays
 from .memory import release_free_memory
 from .options import BuildOptions
 from .pipeline import (Pipeline, StageRecord, Step, WordGraph, _input_record,
@@ -111,24 +119,37 @@ def remove_markers_stage(ifst: pynini.Fst, marker_ids: list[int]) -> pynini.Fst:
     return ofst
 
 
-def minimize_unmarked_stage(ifst: pynini.Fst) -> pynini.Fst:
+def minimize_unmarked_stage(ifst: pynini.Fst | FstHandoff) -> pynini.Fst:
     """Constructively minimizes `ifst` as an acceptor of (input, output, weight) codes.
 
     After the markers became epsilon, a state may have two arcs with the same code, so
     the encoded acceptor may be non-deterministic; OpenFst then merges only states
     with the same future (``allow_nondet``), which keeps the weighted relation. Weights
-    stay where they are and output labels never move.
+    stay where they are and output labels never move. Given as an `FstHandoff`, `ifst`
+    is dropped (with any shared conversion of it) once its encoded copy is made; the
+    copy is minimized and decoded in place, so at most two graphs are alive at a time.
     """
+    handed = isinstance(ifst, FstHandoff)
+    if handed:
+        ifst = ifst.take()
+    # (copies: a table obtained from an FST keeps that FST alive)
+    isymbols, osymbols = (None if t is None else t.copy()
+                          for t in (ifst.input_symbols(), ifst.output_symbols()))
     mapper = pynini.EncodeMapper(ifst.arc_type(), encode_labels=True, encode_weights=True)
     ofst = pynini.encode(ifst, mapper)
+    if handed:
+        forget_shared(ifst)
+        del ifst
+        release_free_memory()
     ofst.minimize(allow_nondet=True)
-    ofst = pynini.decode(ofst, mapper)
-    ofst.set_input_symbols(ifst.input_symbols())
-    ofst.set_output_symbols(ifst.output_symbols())
+    ofst.decode(mapper)  # in place: the encoded copy is ours
+    ofst.set_input_symbols(isymbols)
+    ofst.set_output_symbols(osymbols)
     return ofst
 
 
 _STRUCTURE = (chk.check_nonempty, chk.check_connected, chk.check_labels)
+_CONNECTED = pywrapfst.ACCESSIBLE | pywrapfst.COACCESSIBLE
 
 
 def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
@@ -157,8 +178,24 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
     def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
         return _compose(cfst, lg, "compose-context", "C∘LG")
 
-    def compose_hmm(clg: pynini.Fst, details: dict) -> pynini.Fst:
-        return _compose(hfst, clg, "compose-hmm", "H∘CLG")
+    chains = model_chains(hfst)  # None unless H has build_hmm's shape
+
+    def compose_hmm(given: FstHandoff, details: dict) -> pynini.Fst:
+        clg = given.take()
+        out, connected = None, False
+        if chains is not None and clg.start() != pynini.NO_STATE_ID:
+            connected = clg.properties(_CONNECTED, False) == _CONNECTED
+            out = expand_arrays(fst_to_arrays(clg), chains)
+        if out is None or out.start < 0:
+            # (an empty result is reported by the composition's own emptiness test)
+            details["method"] = "composition"
+            return _compose(hfst, clg, "compose-hmm", "H∘CLG")
+        details["method"] = "expansion"
+        # Only the arrays are needed now: CLG goes before the result is built.
+        forget_shared(clg)
+        del clg
+        release_free_memory()
+        return expanded_fst(out, connected)
 
     def determinize(f: FstHandoff, details: dict) -> pynini.Fst:
         return determinize_stage(f, opts, details=details)  # drops f once written
@@ -167,24 +204,23 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
         details["markers"] = list(kind_table.markers)
         return remove_markers_stage(f, kind_table.marker_ids())
 
-    def minimize(f: pynini.Fst, details: dict) -> pynini.Fst:
+    def minimize(f: FstHandoff, details: dict) -> pynini.Fst:
         details["method"] = "encoded"
-        return minimize_unmarked_stage(f)
+        return minimize_unmarked_stage(f)  # drops f once encoded
 
-    def self_loops(f: pynini.Fst, details: dict) -> pynini.Fst:
+    def self_loops(f: FstHandoff, details: dict) -> pynini.Fst:
         details["transition_scale"] = opts.transition_scale
         details["kinds"] = kind_table.num_kinds
-        ofst = add_self_loops(f, kind_table, opts.transition_scale)
-        ofst.arcsort(sort_type="ilabel")
-        return ofst
+        # Drops f once its arrays are read; the result comes sorted by input label.
+        return add_self_loops(f, kind_table, opts.transition_scale)
 
     deterministic = _STRUCTURE + (chk.check_input_deterministic,)
     # Every step hands its input over (see `measured`), so it is freed when its stage
     # is done with it unless the pipeline was asked to keep it.
     steps = [Step("compose-context", measured(compose_context), _STRUCTURE, "clg",
                   hands_off=True),
-             Step("compose-hmm", measured(compose_hmm), _STRUCTURE, "hclg_raw",
-                  hands_off=True)]
+             Step("compose-hmm", measured(compose_hmm, handoff=True), _STRUCTURE,
+                  "hclg_raw", hands_off=True)]
     if opts.final_optimize:
         steps.append(Step("determinize-hmm", measured(determinize, handoff=True),
                           deterministic, "determinized_full", hands_off=True))
@@ -192,10 +228,10 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
                       _STRUCTURE + (chk.check_no_auxiliary_markers,), "unmarked",
                       hands_off=True))
     if opts.final_optimize:
-        steps.append(Step("minimize-hmm", measured(minimize),
+        steps.append(Step("minimize-hmm", measured(minimize, handoff=True),
                           _STRUCTURE + (chk.check_no_auxiliary_markers,), "minimized_full",
                           hands_off=True))
-    steps.append(Step("self-loops", measured(self_loops),
+    steps.append(Step("self-loops", measured(self_loops, handoff=True),
                       _STRUCTURE + (chk.check_no_auxiliary_markers, chk.check_emission_inputs,
                                     chk.check_word_outputs), hands_off=True))
     return Pipeline(steps)

@@ -155,3 +155,49 @@ def test_context_windows_cover_the_graph(tmp_path):
     inputs = read_inputs(_project(), diag)
     windows = context_windows(inputs)
     assert windows and all(len(w) == 3 for w in windows)
+
+
+@pytest.mark.parametrize("handed", [True, False])
+def test_minimize_hmm_drops_a_handed_over_input_once_encoded(tmp_path, monkeypatch, handed):
+    """Given as an FstHandoff, the unmarked graph is freed before the minimization
+    runs; either way the result is the same and keeps the weighted relation."""
+    import gc
+    import weakref
+
+    from netbuild import full_pipeline
+    from netbuild.guard import FstHandoff
+
+    class Tracked(pynini.Fst):
+        """A pynini FST that a weak reference can watch (the base type cannot)."""
+
+    unmarked = build(_project(), tmp_path / "k", keep_intermediates=True) \
+        .full.intermediates["unmarked"]
+    fst = Tracked()
+    fst.add_states(unmarked.num_states())
+    fst.set_start(unmarked.start())
+    for s in unmarked.states():
+        fst.set_final(s, unmarked.final(s))
+        for arc in unmarked.arcs(s):
+            fst.add_arc(s, arc)
+    fst.set_input_symbols(unmarked.input_symbols())
+    fst.set_output_symbols(unmarked.output_symbols())
+    ref = weakref.ref(fst)
+    alive: list[bool] = []
+
+    def spy() -> bool:  # called (when handed over) between encoding and minimizing
+        gc.collect()
+        alive.append(ref() is not None)
+        return False
+
+    monkeypatch.setattr(full_pipeline, "release_free_memory", spy)
+    given = FstHandoff(fst) if handed else fst
+    del fst
+    out = full_pipeline.minimize_unmarked_stage(given)
+    gc.collect()
+    assert alive == ([False] if handed else [])
+    assert (ref() is None) == handed
+    assert out.num_states() < unmarked.num_states()
+    assert out.input_symbols().find(1) == unmarked.input_symbols().find(1)
+    # reference: OpenFst RandEquivalent (tropical) against the input
+    assert pynini.randequivalent(out, unmarked, npath=300, seed=3, max_length=40,
+                                 delta=1e-3)

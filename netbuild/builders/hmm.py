@@ -6,7 +6,7 @@
   returns ``(fst, kind_table)``.
 - `add_self_loops(ifst, kind_table, transition_scale=1.0)`: adds every HMM state's
   self-loop to an optimized graph over kinds, in bulk, and relabels kinds to emission
-  classes.
+  classes; takes its input as an `FstHandoff` too, and drops it once read.
 - `emission_symbols(kind_table)`: the final input table, ``e<c>`` at id ``c + 1``.
 
 Arc kinds. During optimization H's input labels are not emission classes but *arc
@@ -29,10 +29,12 @@ Self-loops. For every state ``t`` of the optimized graph and every kind ``k`` (w
 self-loop probability above 0) on arcs entering ``t``, a state ``t_k`` receives those
 arcs, carries the self-loop ``k`` with cost ``-ln(self_loop)`` and adds
 ``-ln(forward)`` to each arc leaving it and to its final weight. ``t`` itself serves
-as ``t_k`` when ``k`` is the only thing entering it; otherwise ``t_k`` is a copy of
-``t`` (``t`` keeps the arcs that enter it with epsilon or a kind without a loop, and
-the start state counts as entered by epsilon). A `transition_scale` multiplies both
-costs. All of it is numpy over the arrays of `fst_to_arrays`; no Python loop over arcs.
+as ``t_k`` for the smallest such ``k`` when nothing else enters it; every other ``t_k``
+is a copy of ``t`` (``t`` keeps the arcs that enter it with epsilon or a kind without
+a loop, and the start state counts as entered by epsilon). A `transition_scale`
+multiplies both costs. All of it is numpy over the arrays of `fst_to_arrays` (int32
+where ids fit), no Python loop over arcs; the arcs come out in the order OpenFst's
+input-label arc sort would give them, so the result needs no sort.
 """
 
 from __future__ import annotations
@@ -44,7 +46,10 @@ import pynini
 
 from ..errors import PhoneMapError, Problem, StageError
 from ..io.context_map import ContextMap
-from ..io.fstfile import arrays_to_fst, fst_to_arrays
+from ..guard import FstHandoff
+from ..io.fstfile import (FstArrays, arrays_to_fst, forget_shared, fst_to_arrays,
+                           share_arrays)
+from ..memory import release_free_memory
 from ..symbols import EPSILON, is_auxiliary, make_symbol_table
 from ..bulk import unique_sorted
 
@@ -166,7 +171,7 @@ def emission_symbols(kind_table: KindTable) -> pynini.SymbolTable:
     return make_symbol_table("emissions", [f"e{c}" for c in range(kind_table.num_classes)])
 
 
-def add_self_loops(ifst: pynini.Fst, kind_table: KindTable,
+def add_self_loops(ifst: pynini.Fst | FstHandoff, kind_table: KindTable,
                    transition_scale: float = 1.0) -> pynini.Fst:
     """Constructively adds the HMM self-loops to `ifst` and relabels kinds to classes.
 
@@ -176,92 +181,217 @@ def add_self_loops(ifst: pynini.Fst, kind_table: KindTable,
     that repeat each kind arc's HMM state 0 or more times, each repetition costing
     ``-ln(self_loop)`` and the exit ``-ln(forward)`` (both times `transition_scale`).
 
+    Given as an `FstHandoff`, `ifst` is dropped (with its shared conversion) as soon as
+    its arrays are read, so it is not alive while the result is built. The result's
+    arrays are registered as its shared conversion (`share_arrays`; no-op outside a
+    `shared_conversions` block), so checks of it need not convert it back.
+
     Returns:
-      A new FST whose input labels are emission class + 1 (table: `emission_symbols`)
-      and whose output labels and table are those of `ifst`.
+      A new FST whose input labels are emission class + 1 (table: `emission_symbols`),
+      whose output labels and table are those of `ifst`, and whose arcs are sorted by
+      input label, then output label, ties in the order of the arcs they came from:
+      what OpenFst's input-label arc sort would leave (it compares both, stably).
 
     Raises:
-      StageError: `ifst` has an input label that is not epsilon or a kind, or the
-        scale is negative.
+      StageError: `ifst` has an input label that is not epsilon or a kind, the scale is
+        negative, or the result has too many states for 32-bit state ids.
     """
     if not transition_scale >= 0.0:
         raise StageError("self-loops", f"transition scale {transition_scale} is negative",
                          "set the transition scale to a number >= 0")
-    a = fst_to_arrays(ifst)
+    if isinstance(ifst, FstHandoff):
+        fst = ifst.take()
+        a = fst_to_arrays(fst)
+        forget_shared(fst)
+        del fst
+        release_free_memory()  # the input's pages, for the arrays built next
+    else:
+        a = fst_to_arrays(ifst)
     K = kind_table.num_kinds
     if a.num_arcs and (a.ilabel.max() > K):
         bad = int(a.ilabel[a.ilabel > K][0])
         raise StageError("self-loops", f"input label {bad} is not an arc kind (1..{K})",
                          "replace the auxiliary markers by epsilon before adding self-loops")
-    cls = np.array([0] + [k[0] + 1 for k in kind_table.kinds], dtype=np.int32)
-    loop_p = np.array([0.0] + [k[1] for k in kind_table.kinds], dtype=np.float64)
-    forward_p = np.array([1.0] + [k[2] for k in kind_table.kinds], dtype=np.float64)
+    out = _self_loop_arrays(a, kind_table, transition_scale)
+    del a  # the input's arrays, before OpenFst reads the result
+    release_free_memory()  # and the temporaries' pages, which malloc would keep
+    ofst = arrays_to_fst(out.num_states, out.start, out.final_weights, out.src, out.ilabel,
+                         out.olabel, out.weight, out.dst,
+                         isymbols=emission_symbols(kind_table), osymbols=out.osymbols)
+    share_arrays(ofst, out)  # already grouped by state and sorted: what OpenFst holds
+    return ofst
+
+
+def _segment_starts(counts: np.ndarray) -> np.ndarray:
+    """The exclusive prefix sums of `counts` (int64, one more entry than `counts`)."""
+    first = np.zeros(counts.shape[0] + 1, dtype=np.int64)
+    np.cumsum(counts, out=first[1:])
+    return first
+
+
+def _arc_order(src: np.ndarray, ilabel: np.ndarray, olabel: np.ndarray
+               ) -> np.ndarray | None:
+    """The stable order of the arcs by (state, input label, output label), or None when
+    they are in it already.
+
+    That is the order OpenFst's input-label arc sort leaves (its comparison takes the
+    output label second, and the sort is stable; `tests/builders/test_hmm.py` checks
+    it). Arcs are grouped by state; only the arcs of states where the pair descends
+    somewhere are sorted, the rest keep their places.
+    """
+    if ilabel.shape[0] < 2:
+        return None
+    descent = ilabel[1:] < ilabel[:-1]
+    descent |= (ilabel[1:] == ilabel[:-1]) & (olabel[1:] < olabel[:-1])
+    descent &= src[1:] == src[:-1]
+    if not descent.any():
+        return None
+    unsorted = np.zeros(int(src[-1]) + 1, dtype=bool)
+    unsorted[src[1:][descent]] = True
+    del descent
+    idx = np.flatnonzero(unsorted[src])
+    order = np.arange(ilabel.shape[0], dtype=np.int64)
+    order[idx] = idx[np.lexsort((olabel[idx], ilabel[idx], src[idx]))]  # stable
+    return order
+
+
+def _self_loop_arrays(a: FstArrays, kind_table: KindTable,
+                      transition_scale: float) -> FstArrays:
+    """The arrays of `add_self_loops`'s result, from the input's arrays `a`.
+
+    Layout, state by state: the states of `a` keep their ids, the copies ``t_k`` follow
+    in (t, k) order. Each state's arcs are its template's (its own, or t's for a copy)
+    sorted stably by (emission class, output label), with the self-loop (output
+    epsilon) placed after the arcs whose pair is smaller or equal: the order OpenFst's
+    arc sort gives (template arcs, then the loop). Weights are summed in float64 and
+    stored as float32.
+    """
+    kinds = kind_table.kinds
+    cls = np.array([0] + [k[0] + 1 for k in kinds], dtype=np.int32)
+    loop_p = np.array([0.0] + [k[1] for k in kinds], dtype=np.float64)
+    forward_p = np.array([1.0] + [k[2] for k in kinds], dtype=np.float64)
     with np.errstate(divide="ignore"):
         loop_cost = np.where(loop_p > 0.0, -np.log(loop_p) * transition_scale, np.inf)
         exit_cost = -np.log(forward_p) * transition_scale
     loops = np.isfinite(loop_cost)  # kinds whose HMM state can repeat
 
-    ns = a.num_states
-    src, dst, ilab = a.src.astype(np.int64), a.dst.astype(np.int64), a.ilabel
+    ns, n, start = a.num_states, a.num_arcs, a.start
+    src = a.src
+    iclass = cls[a.ilabel]
+    order = _arc_order(src, iclass, a.olabel)
+    if order is None:
+        ilab, olab, weight, dst = a.ilabel, a.olabel, a.weight, a.dst
+    else:  # (src stays: the order only moves arcs within their state)
+        ilab, olab, weight, dst, iclass = (x[order] for x in (a.ilabel, a.olabel, a.weight,
+                                                              a.dst, iclass))
+        del order
+
     looped = loops[ilab]
     # States entered by something that is not a looping kind (the start state too).
     plain = np.zeros(ns, dtype=bool)
     plain[dst[~looped]] = True
-    if a.start >= 0:
-        plain[a.start] = True
-    # One (state, kind) pair per distinct looping kind entering a state.
-    keys = unique_sorted(dst[looped] << 32 | ilab[looped].astype(np.int64))
-    pair_state = keys >> 32
-    pair_kind = (keys & 0xFFFFFFFF).astype(np.int64)
-    first_of_state = np.ones(keys.shape[0], dtype=bool)
-    first_of_state[1:] = pair_state[1:] != pair_state[:-1]
-    reuse = first_of_state & ~plain[pair_state]  # t itself plays t_k
-    copies = ~reuse
-    pair_id = np.where(reuse, pair_state, 0)
-    pair_id[copies] = ns + np.arange(int(copies.sum()))
-    total_states = ns + int(copies.sum())
+    if start >= 0:
+        plain[start] = True
+    # One (state, kind) pair per distinct looping kind entering a state, in (t, k) order.
+    l_dst, l_kind = dst[looped], ilab[looped]
+    keys = unique_sorted(l_dst.astype(np.int64) << 32 | l_kind)
+    pair_state = (keys >> 32).astype(np.int32)
+    pair_kind = (keys & 0xFFFFFFFF).astype(np.int32)
+    per_state = np.bincount(pair_state, minlength=ns)
+    pair_first = _segment_starts(per_state)
+    reuse = ~plain[pair_state]  # t itself plays t_k for its first pair ...
+    reuse[1:] &= pair_state[1:] != pair_state[:-1]  # ... and only for that one
+    del plain
+    num_copies = int(keys.shape[0] - np.count_nonzero(reuse))
+    total_states = ns + num_copies
+    if total_states >= 2**31:
+        raise StageError("self-loops", f"the graph would have {total_states} states, more "
+                         "than 32-bit state ids allow",
+                         "build a smaller graph (prune the language model)")
+    pair_id = pair_state.copy()
+    pair_id[~reuse] = np.arange(ns, total_states, dtype=np.int32)
 
-    # Redirect every looping-kind arc to the state of its (destination, kind) pair.
+    # Redirect every looping-kind arc to the state of its (destination, kind) pair: the
+    # destination's only pair, or (rarely) the one found among several.
+    where = pair_first[l_dst]
+    several = per_state[l_dst] > 1
+    if several.any():
+        where[several] = np.searchsorted(
+            keys, l_dst[several].astype(np.int64) << 32 | l_kind[several])
     new_dst = dst.copy()
-    if looped.any():
-        where = np.searchsorted(keys, dst[looped] << 32 | ilab[looped].astype(np.int64))
-        new_dst[looped] = pair_id[where]
+    new_dst[looped] = pair_id[where]
+    del where, several, l_dst, l_kind, keys, per_state, pair_first, looped, dst
 
-    weight = a.weight.astype(np.float64)
+    # Output states: the states of `a`, then the copies; each has its template's arcs and
+    # its pair's loop, if any.
+    narcs = np.bincount(src, minlength=ns)
+    first = _segment_starts(narcs)
+    copy_state, copy_kind = pair_state[~reuse], pair_kind[~reuse]
+    reused_state, reused_kind = pair_state[reuse], pair_kind[reuse]
+    out_narcs = np.concatenate([narcs, narcs[copy_state]])
+    out_narcs[pair_id] += 1
+    out_first = _segment_starts(out_narcs)
+    num_out = int(out_first[-1])
+    # Each loop (class c, output epsilon) goes after its template's arcs of a smaller
+    # class and after those of class c with output epsilon, which come first among c's.
+    arc_key = src.astype(np.int64) << 32 | iclass
+    loop_key = pair_state.astype(np.int64) << 32 | cls[pair_kind]
+    below = np.searchsorted(arc_key, loop_key, side="left")
+    upto = np.searchsorted(arc_key, loop_key, side="right")
+    del arc_key, loop_key
+    eps_before = _segment_starts(olab == 0)  # output-epsilon arcs before each arc
+    loop_at = out_first[pair_id] + (below - first[pair_state]) \
+        + (eps_before[upto] - eps_before[below])
+    del below, upto, eps_before
+    is_loop = np.zeros(num_out, dtype=bool)
+    is_loop[loop_at] = True
+    # The output is two regions: the states of `a` (arcs 0 .. split - 1), then the copies.
+    split = int(out_first[ns])
+    own = ~is_loop[:split]
+    copied = ~is_loop[split:]
+    del is_loop, out_first
+    # Arcs of the copies, as indices into the (sorted) arcs of `a`.
+    counts = narcs[copy_state]
+    owner = np.repeat(np.arange(num_copies, dtype=np.int32), counts)
+    index = np.int32 if n < 2**31 else np.int64
+    copy_arc = np.arange(owner.shape[0], dtype=index)
+    copy_arc += np.repeat((first[copy_state] - _segment_starts(counts)[:-1]).astype(index),
+                          counts)
+    del counts, narcs, first
+
+    def place(dtype: type, own_values: np.ndarray, copy_values: np.ndarray,
+              loop_values: np.ndarray) -> np.ndarray:
+        values = np.empty(num_out, dtype=dtype)
+        values[loop_at] = loop_values
+        values[:split][own] = own_values
+        values[split:][copied] = copy_values
+        return values
+
+    o_ilabel = place(np.int32, iclass, iclass[copy_arc], cls[pair_kind])
+    del iclass
+    o_olabel = place(np.int32, olab, olab[copy_arc], 0)
+    del olab
+    o_dst = place(np.int32, new_dst, new_dst[copy_arc], pair_id)
+    del new_dst
+    # Weights: a reused state's arcs (and final weight) pay its kind's exit cost, a copy's
+    # arcs pay the copy's kind's; the sums are taken in float64 as the costs are.
+    state_exit = np.zeros(ns, dtype=np.float64)
+    state_exit[reused_state] = exit_cost[reused_kind]
+    own_w = weight.astype(np.float64)
+    own_w += state_exit[src]
+    del state_exit
+    copy_w = weight[copy_arc].astype(np.float64)
+    copy_w += exit_cost[copy_kind][owner]
+    del copy_arc, owner, weight
+    o_weight = place(np.float32, own_w.astype(np.float32), copy_w.astype(np.float32),
+                     loop_cost[pair_kind].astype(np.float32))
+    del own_w, copy_w, own, copied, loop_at
+    o_src = np.repeat(np.arange(total_states, dtype=np.int32), out_narcs)
+    del out_narcs
+
     finals = np.full(total_states, np.inf, dtype=np.float64)
     finals[:ns] = a.final_weights
-    # Reused states: their own arcs and final weight pay the exit cost.
-    reused_state = pair_state[reuse]
-    add = np.zeros(ns, dtype=np.float64)
-    add[reused_state] = exit_cost[pair_kind[reuse]]
-    weight = weight + add[src]
-    finals[reused_state] += exit_cost[pair_kind[reuse]]
-
-    # Copies: the arcs of t, shifted to t_k with the exit cost of k.
-    narcs = np.bincount(src, minlength=ns) if ns else np.zeros(0, dtype=np.int64)
-    first = np.zeros(ns + 1, dtype=np.int64)
-    np.cumsum(narcs, out=first[1:])
-    c_state, c_kind, c_id = pair_state[copies], pair_kind[copies], pair_id[copies]
-    counts = narcs[c_state]
-    owner = np.repeat(np.arange(c_state.shape[0]), counts)
-    offset = np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
-    arc_idx = first[c_state][owner] + offset
-    base_weight = a.weight.astype(np.float64)
-    c_src = c_id[owner]
-    c_w = base_weight[arc_idx] + exit_cost[c_kind][owner]
-    finals[c_id] = a.final_weights[c_state] + exit_cost[c_kind]
-
-    # The self-loops, one per pair.
-    l_src = pair_id
-    l_w = loop_cost[pair_kind]
-
-    all_src = np.concatenate([src, c_src, l_src])
-    all_dst = np.concatenate([new_dst, new_dst[arc_idx], l_src])
-    all_ilab = np.concatenate([ilab, ilab[arc_idx], pair_kind]).astype(np.int64)
-    all_olab = np.concatenate([a.olabel, a.olabel[arc_idx],
-                               np.zeros(l_src.shape[0], dtype=np.int32)])
-    all_w = np.concatenate([weight, c_w, l_w])
-    ofst = arrays_to_fst(total_states, a.start, finals.astype(np.float32), all_src,
-                         cls[all_ilab], all_olab, all_w.astype(np.float32), all_dst,
-                         isymbols=emission_symbols(kind_table), osymbols=a.osymbols)
-    return ofst
+    finals[reused_state] += exit_cost[reused_kind]
+    finals[ns:] = a.final_weights[copy_state] + exit_cost[copy_kind]
+    return FstArrays(total_states, start, finals.astype(np.float32), o_src, o_ilabel,
+                     o_olabel, o_weight, o_dst, osymbols=a.osymbols)

@@ -14,7 +14,7 @@ from netbuild.builders.hmm import (KindTable, add_self_loops, build_hmm, emissio
                                    make_model_symbols)
 from netbuild.errors import PhoneMapError, StageError
 from netbuild.io.context_map import ContextMap, HmmState, Model
-from netbuild.io.fstfile import arrays_to_fst
+from netbuild.io.fstfile import arrays_to_fst, fst_to_arrays
 from netbuild.symbols import BACKOFF, disambiguation_marker, make_symbol_table
 
 PHONES = make_symbol_table("phones", ["a", "b", "sil", BACKOFF, disambiguation_marker(1)])
@@ -252,3 +252,140 @@ def test_self_loops_refuse_markers_left_in_place():
     fst = arrays_to_fst(2, 0, [np.inf, 0.0], [0], [2], [0], [0.0], [1])
     with pytest.raises(StageError, match="not an arc kind"):
         add_self_loops(fst, kinds)
+
+
+def _construction(fst: pynini.Fst, kinds: KindTable, scale: float) -> pynini.Fst:
+    """The module docstring's construction in plain Python, arc by arc: states t_k for
+    the looping kinds entering t (t itself for the first when t is entered by nothing
+    else and is not the start), numbered after the states of `fst` in (t, k) order;
+    then OpenFst's own input-label arc sort. Weights are summed in Python floats."""
+    loop = {i + 1: (-math.log(p) * scale if p > 0 else None)
+            for i, (_, p, _) in enumerate(kinds.kinds)}
+    exit_ = {0: 0.0, **{i + 1: -math.log(f) * scale for i, (_, _, f) in enumerate(kinds.kinds)}}
+    cls = {0: 0, **{i + 1: c + 1 for i, (c, _, _) in enumerate(kinds.kinds)}}
+    n = fst.num_states()
+    entering: dict[int, set[int]] = {t: set() for t in range(n)}
+    plain = {fst.start()}
+    for s in fst.states():
+        for arc in fst.arcs(s):
+            if arc.ilabel and loop[arc.ilabel] is not None:
+                entering[arc.nextstate].add(arc.ilabel)
+            else:
+                plain.add(arc.nextstate)
+    pair: dict[tuple[int, int], int] = {}
+    template: list[tuple[int, int]] = [(t, 0) for t in range(n)]  # (state, its kind)
+    for t in range(n):
+        for i, k in enumerate(sorted(entering[t])):
+            if i == 0 and t not in plain:
+                pair[t, k] = t
+                template[t] = (t, k)
+            else:
+                pair[t, k] = len(template)
+                template.append((t, k))
+    out = pynini.Fst()
+    out.add_states(len(template))
+    out.set_start(fst.start())
+    for s, (t, k) in enumerate(template):
+        final = float(fst.final(t))
+        if math.isfinite(final):
+            out.set_final(s, final + exit_[k])
+        for arc in fst.arcs(t):
+            j = arc.ilabel
+            dst = pair.get((arc.nextstate, j), arc.nextstate)
+            out.add_arc(s, pynini.Arc(cls[j], arc.olabel, float(arc.weight) + exit_[k], dst))
+        if k:
+            out.add_arc(s, pynini.Arc(cls[k], 0, loop[k], s))
+    return out.arcsort(sort_type="ilabel")  # reference: OpenFst ArcSort (stable)
+
+
+@st.composite
+def wide_graphs_and_kinds(draw):
+    """Cyclic graphs whose states have many arcs, few classes shared by several kinds,
+    and repeated output labels: every tie the arc order has to break."""
+    triples = draw(st.lists(
+        st.tuples(st.integers(0, 2), st.sampled_from([0.0, 0.5, 0.75])),
+        min_size=1, max_size=6))
+    kinds = _kinds([(c, p, 1.0 - p) for c, p in triples])
+    n = draw(st.integers(1, 6))
+    arcs = [(draw(st.integers(0, n - 1)), draw(st.integers(0, kinds.num_kinds)),
+             draw(st.integers(0, 2)), draw(st.sampled_from([0.0, 0.5, 1.25])),
+             draw(st.integers(0, n - 1)))
+            for _ in range(draw(st.integers(0, 30)))]
+    finals = set(draw(st.lists(st.integers(0, n - 1), max_size=3)))
+    if not arcs:
+        fst = arrays_to_fst(n, 0, [0.5 if i in finals else np.inf for i in range(n)],
+                            [], [], [], [], [])
+    else:
+        fst = _random_graph(n, arcs, finals)
+    return fst, kinds
+
+
+def _arrays(fst: pynini.Fst) -> list[np.ndarray]:
+    a = fst_to_arrays(fst)
+    return [np.array([a.num_states, a.start]), a.final_weights, a.src, a.ilabel,
+            a.olabel, a.weight, a.dst]
+
+
+@given(wide_graphs_and_kinds(), st.sampled_from([1.0, 0.3]))
+def test_self_loops_lay_out_the_documented_construction_arc_sorted(case, scale):
+    fst, kinds = case
+    got = add_self_loops(fst, kinds, transition_scale=scale)
+    want = _construction(fst, kinds, scale)
+    for g, w in zip(_arrays(got), _arrays(want)):
+        np.testing.assert_array_equal(g, w)
+    # Already in the order OpenFst's arc sort gives, and marked as sorted.
+    assert got.properties(pynini.I_LABEL_SORTED, False) == pynini.I_LABEL_SORTED
+    again = got.copy().arcsort(sort_type="ilabel")
+    for g, w in zip(_arrays(got), _arrays(again)):
+        np.testing.assert_array_equal(g, w)
+
+
+@pytest.mark.parametrize("handed", [True, False])
+def test_self_loops_release_a_handed_over_input_and_share_their_arrays(monkeypatch, handed):
+    """Given as an FstHandoff, the input (and the shared conversion of it) is freed
+    before the result is built; the result's registered arrays are what a fresh
+    conversion of it gives."""
+    import gc
+    import weakref
+
+    from netbuild.builders import hmm
+    from netbuild.guard import FstHandoff
+    from netbuild.io.fstfile import shared_arrays, shared_conversions
+
+    class Tracked(pynini.Fst):
+        """A pynini FST that a weak reference can watch (the base type cannot)."""
+
+    kinds = _kinds([(0, 0.5, 0.5), (1, 0.25, 0.75)])
+    base = arrays_to_fst(4, 0, [np.inf, np.inf, np.inf, 0.0], [0, 0, 0, 1, 2, 3],
+                         [0, 1, 2, 2, 0, 1], [1, 0, 2, 0, 0, 0], [0.5, 0, 0, 0.25, 0, 0],
+                         [1, 2, 3, 3, 3, 3])
+    fst = Tracked()
+    fst.add_states(base.num_states())
+    fst.set_start(base.start())
+    for s in base.states():
+        fst.set_final(s, base.final(s))
+        for arc in base.arcs(s):
+            fst.add_arc(s, arc)
+    want = _arrays(add_self_loops(base, kinds))
+    ref = weakref.ref(fst)
+    alive: list[bool] = []
+    build = hmm.arrays_to_fst
+
+    def spy(*args, **kwargs):
+        gc.collect()
+        alive.append(ref() is not None)
+        return build(*args, **kwargs)
+
+    monkeypatch.setattr(hmm, "arrays_to_fst", spy)
+    given = FstHandoff(fst) if handed else fst
+    del fst
+    with shared_conversions():
+        got = add_self_loops(given, kinds)
+        shared = shared_arrays(got)  # None unless registered (nothing converted it)
+    assert alive == [not handed]
+    assert shared is not None and shared.isymbols.find(1) == "e0"
+    registered = [np.array([shared.num_states, shared.start]), shared.final_weights,
+                  shared.src, shared.ilabel, shared.olabel, shared.weight, shared.dst]
+    for r, g, w in zip(registered, _arrays(got), want):  # outside the block: fresh
+        np.testing.assert_array_equal(r, w)
+        np.testing.assert_array_equal(g, w)
