@@ -49,3 +49,7 @@ class BuildOptions:
     # pronunciations (netbuild.lextree), falling back to "compose" (OpenFst's
     # composition and determinization) where its preconditions do not hold.
     word_graph: WordGraphMethod = "tree"
+    # Library only (no project key): determinize without the guard's child process.
+    # The size prediction's sub-builds use it; they are small shares of a model whose
+    # own build is guarded, and each child would cost about half a second to start.
+    determinize_in_process: bool = False

@@ -120,9 +120,23 @@ def determinize_stage(ifst: pynini.Fst | FstHandoff, opts: BuildOptions, *,
     stored in it ("child_peak_rss_bytes", "child_seconds"). Given as an `FstHandoff`,
     the input is dropped once the child has its copy (see `determinize_guarded`).
 
+    With `opts.determinize_in_process` (the size prediction's small sub-builds, whose
+    full build is guarded) it determinizes in this process instead, without limits.
+
     Raises:
         DeterminizeError: a pre-check failed, or the child hit a limit or crashed.
     """
+    if opts.determinize_in_process:
+        fst = ifst.take() if isinstance(ifst, FstHandoff) else ifst
+        try:
+            ofst = pynini.determinize(fst, det_type="functional")
+        except pywrapfst.FstError as err:
+            raise StageError("determinize", f"OpenFst could not determinize ({err})",
+                             "build the graph with 'netbuild build' to see the cause"
+                             ) from err
+        ofst.set_input_symbols(fst.input_symbols())
+        ofst.set_output_symbols(fst.output_symbols())
+        return ofst
     result = determinize_guarded(ifst, opts.determinize_max_memory,
                                  opts.determinize_timeout, det_type="functional",
                                  lfst=lfst, gfst=gfst)

@@ -279,7 +279,7 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
     inputs = read_inputs(project, diag)
     diag.raise_if_errors()
     assert inputs is not None
-    opts = dataclasses.replace(project.options, checks=False)
+    opts = dataclasses.replace(project.options, checks=False, determinize_in_process=True)
     model, _ = restrict_vocabulary(inputs.model, set(inputs.lexicon.words()),
                                    opts.grammar.oov_policy)
     if fractions is not None and any(not 0.0 < f < 1.0 for f in fractions):
