@@ -3,6 +3,8 @@
 - `unique_sorted(a)`: the sorted distinct values of a 1-D array.
 - `value_iteration(src, dst, prob, final, num_states)`: d = final + M d, or None when the
   iteration diverges.
+- `reachable(num_nodes, src, dst, seeds)`: the nodes reachable from `seeds`, breadth
+  first, in bulk.
 """
 
 from __future__ import annotations
@@ -63,3 +65,32 @@ def value_iteration(src: np.ndarray, dst: np.ndarray, prob: np.ndarray, final: n
         if iteration >= _WARMUP_PASSES and growing >= _GROWING_PASSES:
             return None
     return None
+
+
+def reachable(num_nodes: int, src: np.ndarray, dst: np.ndarray, seeds: np.ndarray) -> np.ndarray:
+    """Nodes reachable from `seeds` along edges src -> dst (breadth-first, in bulk)."""
+    order = np.argsort(src, kind="stable")
+    targets = dst[order]
+    indptr = np.zeros(num_nodes + 1, dtype=np.int64)
+    np.cumsum(np.bincount(src, minlength=num_nodes), out=indptr[1:])
+    seen = np.zeros(num_nodes, dtype=bool)
+    seen[seeds] = True
+    frontier = np.flatnonzero(seen)
+    while len(frontier):
+        starts, ends = indptr[frontier], indptr[frontier + 1]
+        counts = ends - starts
+        total = int(counts.sum())
+        if total == 0:
+            break
+        idx = np.repeat(starts - np.cumsum(counts) + counts, counts) + np.arange(total)
+        nxt = targets[idx]
+        nxt = nxt[~seen[nxt]]
+        if len(nxt) > num_nodes // 8:
+            fresh = np.zeros(num_nodes, dtype=bool)
+            fresh[nxt] = True
+            nxt = np.flatnonzero(fresh)
+        else:
+            nxt = unique_sorted(nxt)
+        seen[nxt] = True
+        frontier = nxt
+    return seen

@@ -57,7 +57,7 @@ import math
 import numpy as np
 import pynini
 
-from .bulk import unique_sorted, value_iteration
+from .bulk import reachable, unique_sorted, value_iteration
 from .builders.grammar import GrammarResult
 from .builders.lexicon import LexiconResult, Pronunciations
 from .errors import EmptyCompositionError
@@ -215,35 +215,6 @@ def _word_prefixes(spelled: Pronunciations, padded: np.ndarray,
 # ------------------------------------------------------------------ reachability
 
 
-def _reach(num_nodes: int, src: np.ndarray, dst: np.ndarray, seeds: np.ndarray) -> np.ndarray:
-    """Nodes reachable from `seeds` along edges src -> dst (breadth-first, in bulk)."""
-    order = np.argsort(src, kind="stable")
-    targets = dst[order]
-    indptr = np.zeros(num_nodes + 1, dtype=np.int64)
-    np.cumsum(np.bincount(src, minlength=num_nodes), out=indptr[1:])
-    seen = np.zeros(num_nodes, dtype=bool)
-    seen[seeds] = True
-    frontier = np.flatnonzero(seen)
-    while len(frontier):
-        starts, ends = indptr[frontier], indptr[frontier + 1]
-        counts = ends - starts
-        total = int(counts.sum())
-        if total == 0:
-            break
-        idx = np.repeat(starts - np.cumsum(counts) + counts, counts) + np.arange(total)
-        nxt = targets[idx]
-        nxt = nxt[~seen[nxt]]
-        if len(nxt) > num_nodes // 8:
-            fresh = np.zeros(num_nodes, dtype=bool)
-            fresh[nxt] = True
-            nxt = np.flatnonzero(fresh)
-        else:
-            nxt = unique_sorted(nxt)
-        seen[nxt] = True
-        frontier = nxt
-    return seen
-
-
 def _coaccessible(n_nodes: int, ng: int, bo_src: np.ndarray, bo_dst: np.ndarray,
                   final: np.ndarray, copies: bool) -> np.ndarray | None:
     """All nodes, when every G state reaches a final state through back-off arcs alone
@@ -321,14 +292,14 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
             e_w += [bo_w + sil.no_silence, w_spell + sil.no_silence]
     e_src, e_dst, e_w = (np.concatenate(x) for x in (e_src, e_dst, e_w))
     start = g.start + ng if branch else g.start
-    forward = _reach(n_nodes, e_src, e_dst, np.array([start]))
+    forward = reachable(n_nodes, e_src, e_dst, np.array([start]))
     is_final = np.zeros(n_nodes, dtype=bool)
     is_final[:ng] = np.isfinite(finals)
     if copies:
         is_final[ng:] = np.isfinite(finals)
     backward = _coaccessible(n_nodes, ng, bo_src, bo_dst, np.isfinite(finals), copies)
     if backward is None:
-        backward = _reach(n_nodes, e_dst, e_src, np.flatnonzero(is_final))
+        backward = reachable(n_nodes, e_dst, e_src, np.flatnonzero(is_final))
     keep = forward & backward
     if not keep[start]:
         raise _empty()

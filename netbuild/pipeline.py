@@ -466,22 +466,23 @@ def build_word_graph(lexicon: LexiconResult, grammar: GrammarResult, opts: Build
     inputs = (("grammar", gfst, (chk.check_nonempty, chk.check_connected, chk.check_labels)),
               ("lexicon", lfst, (chk.check_nonempty, chk.check_labels,
                                  chk.check_homophones, chk.check_backoff_passthrough)))
-    for name, fst, checks in inputs:
-        started = time.perf_counter()
-        if opts.checks:
-            ctx = context(name)
-            for check in checks:
-                check(fst, ctx)
-        record = _input_record(name, fst, time.perf_counter() - started)
-        records.append(record)
-        if progress is not None:
-            progress(record)
-
     pipeline = None
-    if opts.word_graph == "tree":
-        tree_in, _ = lextree.tree_inputs(lexicon, grammar)
-        if tree_in is not None:
-            pipeline = tree_pipeline(tree_in, phones, words, opts)
+    # One conversion of G (and of L) serves the input checks and the tree's inputs.
+    with shared_conversions():
+        for name, fst, checks in inputs:
+            started = time.perf_counter()
+            if opts.checks:
+                ctx = context(name)
+                for check in checks:
+                    check(fst, ctx)
+            record = _input_record(name, fst, time.perf_counter() - started)
+            records.append(record)
+            if progress is not None:
+                progress(record)
+        if opts.word_graph == "tree":
+            tree_in, _ = lextree.tree_inputs(lexicon, grammar)
+            if tree_in is not None:
+                pipeline = tree_pipeline(tree_in, phones, words, opts)
     if pipeline is None:
         pipeline = word_pipeline(lfst, gfst, opts)
     final, stage_records, kept = pipeline.run(gfst, checks=opts.checks, context=context,

@@ -6,9 +6,13 @@ import os
 
 import pynini
 import pytest
+import pywrapfst
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from wordgraph_helpers import demo_case, lexicon_for, word_table
 
 from netbuild import checks as chk
+from netbuild.io.fstfile import fst_to_arrays, shared_conversions
 from netbuild.errors import CheckFailed, EmptyCompositionError, InputCheckFailed
 from netbuild.symbols import BACKOFF, make_symbol_table
 
@@ -130,3 +134,26 @@ def test_backoff_passthrough_and_reachable_words():
     partial = pynini.compose(small.fst, grammar.fst)
     with pytest.raises(InputCheckFailed, match=r"4 words of the model cannot be reached"):
         chk.check_words_reachable(partial, chk.CheckContext("compose", gfst=grammar.fst))
+
+
+@settings(max_examples=150, deadline=None)
+@given(st.integers(1, 12), st.lists(st.tuples(st.integers(0, 11), st.integers(0, 11)),
+                                    max_size=30),
+       st.lists(st.integers(0, 11), max_size=3), st.integers(0, 11))
+def test_bulk_connectivity_equals_openfst(n, edges, finals, start):
+    """The connectivity bits worked out in bulk from the shared arrays are OpenFst's."""
+    fst = pynini.Fst()
+    for _ in range(n):
+        fst.add_state()
+    fst.set_start(start % n)
+    for a, b in edges:
+        fst.add_arc(a % n, pynini.Arc(1, 1, 0.0, b % n))
+    for f in finals:
+        fst.set_final(f % n)
+    mask = pywrapfst.ACCESSIBLE | pywrapfst.COACCESSIBLE
+    # reference: OpenFst's own connectivity search (fst/connect.h), on a copy
+    want = fst.copy().properties(mask, True)
+    with shared_conversions():
+        fst_to_arrays(fst)
+        chk._store_connectivity(fst)
+        assert fst.properties(mask, False) == want
