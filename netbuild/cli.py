@@ -246,7 +246,7 @@ def check(project_file, as_json, **flags) -> None:
 # --- build ------------------------------------------------------------------------
 
 def _stage_row(name: str, states: Any, arcs: Any, seconds: Any, peak: Any) -> str:
-    return f"{name:<16} {states:>10} {arcs:>11} {seconds:>9} {peak:>11}"
+    return f"{name:<19} {states:>10} {arcs:>11} {seconds:>9} {peak:>11}"
 
 
 @cli.command()
