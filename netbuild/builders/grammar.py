@@ -100,7 +100,9 @@ def word_symbol_table(model: ArpaModel) -> pynini.SymbolTable:
 
 
 def _check_vocab(model: ArpaModel) -> None:
-    bad = [i for i, w in enumerate(model.vocab) if w == EPSILON or is_auxiliary(w)]
+    # (auxiliary markers all start with "!": the cheap test screens the vocabulary)
+    bad = [i for i, w in enumerate(model.vocab)
+           if w == EPSILON or (w[:1] == "!" and is_auxiliary(w))]
     if len(set(model.vocab)) != len(model.vocab):
         seen: set[str] = set()
         dup = next(w for w in model.vocab if w in seen or seen.add(w))
@@ -117,6 +119,14 @@ def _check_vocab(model: ArpaModel) -> None:
         raise ArpaError(f"word '{word}' is a reserved netbuild symbol",
                         "rename it in the model (and the lexicon)",
                         path=model.path, line=line)
+
+
+def _position(vocab: list[str], word: str) -> int:
+    """The index of `word` in `vocab`, -1 if absent."""
+    try:
+        return vocab.index(word)
+    except ValueError:
+        return -1
 
 
 class _Packer:
@@ -301,9 +311,9 @@ class _Histories:
         self.packer = _Packer(max(len(model.vocab), 1))
         self.order = model.max_order
         vocab_size = len(model.vocab)
-        widx = model.word_index()
-        self.bos = widx.get(SENTENCE_START, -1)
-        self.eos = widx.get(SENTENCE_END, -1)
+        # (the vocabulary has no duplicates, `_check_vocab` saw to it)
+        self.bos = _position(model.vocab, SENTENCE_START)
+        self.eos = _position(model.vocab, SENTENCE_END)
         top = self.order - 1
         pack = self.packer.pack
         # Top-down: the contexts of each level, and the holes among them (contexts that
@@ -680,7 +690,7 @@ def build_grammar(model: ArpaModel) -> GrammarResult:
     del hist
     src, ilabel, weight, dst = _merge_arcs(num_states, backoff_label + 1,
                                            srcs, labels, weights, dsts)
-    olabel = np.where(ilabel == backoff_label, 0, ilabel).astype(np.int32)
+    olabel = np.where(ilabel == backoff_label, 0, ilabel).astype(np.int32, copy=False)
     symbols = word_symbol_table(model)
     fst = arrays_to_fst(num_states, start, final, src, ilabel, olabel, weight, dst,
                         symbols, symbols)
