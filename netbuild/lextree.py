@@ -5,7 +5,8 @@
 - `build_tree_graph(inputs)`: the determinized L∘G (`TreeGraph`: arrays and structure).
 - `minimize_tree_graph(tree)`: its minimal form as an encoded acceptor (labels and
   weights read as one label, as `pipeline.minimize_stage` does).
-- `tropical_push_arrays(arcs)`: weights pushed toward the start state (tropical).
+- `distances_to_final(...)`, `push_arrays(arcs, potentials)`: tropical distances and
+  the weight push they give.
 - `log_total_diverges(inputs)`: whether L∘G's log-semiring total is unbounded.
 
 Why it works. G is deterministic on its input (one arc per word and state, the back-off
@@ -65,7 +66,8 @@ from .io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
 from .symbols import BACKOFF
 
 __all__ = ["TreeInputs", "TreeGraph", "tree_inputs", "build_tree_graph",
-           "minimize_tree_graph", "tropical_push_arrays", "log_total_diverges"]
+           "minimize_tree_graph", "distances_to_final", "push_arrays",
+           "log_total_diverges"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -98,6 +100,7 @@ class TreeInputs:
     padded: np.ndarray  # (pronunciations, longest) labels, -1 after the end
     rank: np.ndarray  # lexicographic rank of each pronunciation string
     prefixes: WordPrefixes
+    prons_per_word: np.ndarray  # by word label (G's labels and L's words alike)
 
 
 @dataclasses.dataclass
@@ -171,7 +174,9 @@ def tree_inputs(lexicon: LexiconResult, grammar: GrammarResult) -> tuple[TreeInp
     rank = np.empty(len(order), dtype=np.int64)
     rank[order] = np.arange(len(order))
     prefixes = _word_prefixes(spelled, padded, rank)
-    return TreeInputs(g, int(backoff_word), spelled, padded, rank, prefixes), ""
+    per_word = np.bincount(spelled.words, minlength=int(max(g.ilabel.max(initial=0),
+                                                            spelled.words.max()) + 1))
+    return TreeInputs(g, int(backoff_word), spelled, padded, rank, prefixes, per_word), ""
 
 
 def _word_prefixes(spelled: Pronunciations, padded: np.ndarray,
@@ -216,7 +221,7 @@ def _word_prefixes(spelled: Pronunciations, padded: np.ndarray,
 
 
 def _coaccessible(n_nodes: int, ng: int, bo_src: np.ndarray, bo_dst: np.ndarray,
-                  final: np.ndarray, copies: bool) -> np.ndarray | None:
+                  final: np.ndarray) -> np.ndarray | None:
     """All nodes, when every G state reaches a final state through back-off arcs alone
     (the usual case: back-off chains end in the final unigram state); else None."""
     nxt = np.arange(ng, dtype=np.int64)
@@ -266,8 +271,7 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
     is_bo = g.ilabel == inputs.backoff_word
     bo_src, bo_dst = g.src[is_bo].astype(np.int64), g.dst[is_bo].astype(np.int64)
     bo_w = g.weight[is_bo].astype(np.float64)
-    n_prons_of = np.bincount(spelled.words, minlength=int(max(g.ilabel.max(initial=0),
-                                                              spelled.words.max()) + 1))
+    n_prons_of = inputs.prons_per_word
     word_arc = (~is_bo) & (n_prons_of[g.ilabel] > 0)
     w_src, w_word = g.src[word_arc].astype(np.int64), g.ilabel[word_arc].astype(np.int64)
     w_cost, w_dst = g.weight[word_arc].astype(np.float64), g.dst[word_arc].astype(np.int64)
@@ -276,28 +280,22 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
     # Reachability on G's level: node q is B(q), node ng + q is BS(q).
     n_nodes = 2 * ng if branch else ng
     target = w_dst + ng if branch else w_dst  # where a word ends
-    # Edge weights: a word's cheapest spelling (G cost + its cheapest pronunciation).
-    cheapest = np.full(len(n_prons_of), np.inf)
-    np.minimum.at(cheapest, spelled.words, spelled.costs)
-    w_spell = w_cost + cheapest[w_word]
-    e_src, e_dst, e_w = [bo_src, w_src], [bo_dst, target], [bo_w, w_spell]
+    e_src, e_dst = [bo_src, w_src], [bo_dst, target]
     if branch:
         q_all = np.arange(ng, dtype=np.int64)
         e_src.append(q_all + ng)
         e_dst.append(q_all)  # silence
-        e_w.append(np.full(ng, sil.silence))
         if copies:
             e_src += [bo_src + ng, w_src + ng]
             e_dst += [bo_dst, target]
-            e_w += [bo_w + sil.no_silence, w_spell + sil.no_silence]
-    e_src, e_dst, e_w = (np.concatenate(x) for x in (e_src, e_dst, e_w))
+    e_src, e_dst = np.concatenate(e_src), np.concatenate(e_dst)
     start = g.start + ng if branch else g.start
     forward = reachable(n_nodes, e_src, e_dst, np.array([start]))
     is_final = np.zeros(n_nodes, dtype=bool)
     is_final[:ng] = np.isfinite(finals)
     if copies:
         is_final[ng:] = np.isfinite(finals)
-    backward = _coaccessible(n_nodes, ng, bo_src, bo_dst, np.isfinite(finals), copies)
+    backward = _coaccessible(n_nodes, ng, bo_src, bo_dst, np.isfinite(finals))
     if backward is None:
         backward = reachable(n_nodes, e_dst, e_src, np.flatnonzero(is_final))
     keep = forward & backward
@@ -305,6 +303,10 @@ def build_tree_graph(inputs: TreeInputs) -> TreeGraph:
         raise _empty()
     # Each boundary state's distance to the end (tropical); the trees below add none
     # of their own, so these give every state's potential for the weight push.
+    # A word's cheapest spelling: its G cost plus its cheapest pronunciation.
+    cheapest = np.full(len(n_prons_of), np.inf)
+    np.minimum.at(cheapest, spelled.words, spelled.costs)
+    w_spell = w_cost + cheapest[w_word]
     # BS(q) costs min(-ln s, -ln(1 - s)) more than B(q) (silence, or B's arcs with the
     # cost of no silence), so the passes run on the B states alone.
     extra = min(sil.silence, sil.no_silence) if branch else 0.0
@@ -607,9 +609,7 @@ def _refine_boundary(tree: TreeGraph) -> np.ndarray:
     index = np.full(2 * ng, -1, dtype=np.int64)  # B(q) at q, BS(q) at ng + q
     index[tree.boundary_state + ng * silence] = np.arange(nb)
 
-    n_prons_of = np.bincount(spelled.words, minlength=int(max(g.ilabel.max(initial=0),
-                                                              spelled.words.max()) + 1))
-    word_arc = (g.ilabel != inputs.backoff_word) & (n_prons_of[g.ilabel] > 0)
+    word_arc = (g.ilabel != inputs.backoff_word) & (inputs.prons_per_word[g.ilabel] > 0)
     gs, gd = g.src[word_arc].astype(np.int64), g.dst[word_arc].astype(np.int64)
     gw, gc = g.ilabel[word_arc].astype(np.int64), _bits(g.weight[word_arc])
     end = index[gd + (ng if branch else 0)]
@@ -676,21 +676,24 @@ def minimize_tree_graph(tree: TreeGraph) -> tuple[FstArrays, np.ndarray | None]:
     nodes_by_height = np.argsort(tree.height, kind="stable") + nb
     node_cuts = np.searchsorted(tree.height[nodes_by_height - nb],
                                 np.arange(1, int(tree.height.max(initial=0)) + 2))
+    # A node's place among the nodes of its height (one array for all heights).
+    place = np.zeros(a.num_states, dtype=np.int64)
+    place[nodes_by_height] = (np.arange(len(nodes_by_height))
+                              - node_cuts[tree.height[nodes_by_height - nb] - 1])
     for h in range(1, len(cuts)):
         sel = by_height[cuts[h - 1]:cuts[h]]
         nodes = nodes_by_height[node_cuts[h - 1]:node_cuts[h]]
         if len(nodes) == 0:
             continue
-        local = np.full(a.num_states, -1, dtype=np.int64)
-        local[nodes] = np.arange(len(nodes))
-        owner = local[src[sel]]
-        k1 = _combine(a.ilabel[sel], a.olabel[sel], wbits[sel], cls[dst[sel]], seed=11)
-        k2 = _combine(a.ilabel[sel], a.olabel[sel], wbits[sel], cls[dst[sel]], seed=12)
-        t1 = _sum_by_owner(k1, owner, len(nodes))
-        t2 = _sum_by_owner(k2, owner, len(nodes))
+        owner = place[src[sel]]
         degree = np.bincount(owner, minlength=len(nodes))
-        c = _classes(_combine(t1.view(np.int64), degree, seed=13),
-                     _combine(t2.view(np.int64), degree, seed=14))
+        signatures = []
+        for seed in (11, 12):  # two independent 64-bit signatures per node
+            arc_hash = _combine(a.ilabel[sel], a.olabel[sel], wbits[sel], cls[dst[sel]],
+                                seed=seed)
+            total = _sum_by_owner(arc_hash, owner, len(nodes))
+            signatures.append(_combine(total.view(np.int64), degree, seed=seed + 2))
+        c = _classes(*signatures)
         cls[nodes] = next_cls + c
         next_cls += int(c.max()) + 1
     # One representative (the first state) per class keeps its arcs. Classes are
@@ -779,14 +782,6 @@ def push_arrays(arcs: FstArrays, potentials: np.ndarray) -> FstArrays:
                      dst.astype(np.int32))
 
 
-def tropical_push_arrays(arcs: FstArrays) -> FstArrays | None:
-    """Constructively pushes `arcs` toward the start state (tropical), or None when the
-    distances do not settle (see `distances_to_final`)."""
-    v = distances_to_final(arcs.num_states, arcs.src, arcs.dst, arcs.weight,
-                           arcs.final_weights)
-    return None if v is None else push_arrays(arcs, v)
-
-
 def log_total_diverges(inputs: TreeInputs, max_iterations: int = 3000) -> bool:
     """True when the log-semiring total of L∘G is unbounded (computed on G's level).
 
@@ -798,7 +793,7 @@ def log_total_diverges(inputs: TreeInputs, max_iterations: int = 3000) -> bool:
     """
     g, spelled = inputs.grammar, inputs.spelled
     mass = np.bincount(spelled.words, weights=np.exp(-spelled.costs),
-                       minlength=int(max(g.ilabel.max(initial=0), spelled.words.max()) + 1))
+                       minlength=len(inputs.prons_per_word))
     is_bo = g.ilabel == inputs.backoff_word
     factor = np.where(is_bo, 1.0, mass[g.ilabel])
     prob = np.exp(-g.weight.astype(np.float64)) * factor
