@@ -62,11 +62,11 @@ def release_free_memory() -> bool:
     """
     if not _TRIM:
         import ctypes
-        import ctypes.util
 
         try:
-            libc = ctypes.CDLL(ctypes.util.find_library("c") or "libc.so.6")
-            trim = libc.malloc_trim
+            # The C library the process already has loaded: no search for it (looking
+            # it up by name runs ldconfig in a child process).
+            trim = ctypes.CDLL(None).malloc_trim
             trim.argtypes, trim.restype = [ctypes.c_size_t], ctypes.c_int
         except (OSError, AttributeError):
             trim = None

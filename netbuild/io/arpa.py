@@ -44,6 +44,7 @@ from typing import BinaryIO
 import numpy as np
 
 from ..errors import ArpaError, Diagnostics, Problem
+from ..memory import release_free_memory
 from ..symbols import SENTENCE_END, SENTENCE_START
 
 
@@ -397,19 +398,6 @@ def _open_binary(path: str) -> tuple[BinaryIO, int]:
     return raw, size
 
 
-def _release_free_memory() -> None:
-    """Returns freed heap memory to the system (glibc only; a no-op elsewhere).
-
-    What the reading threads freed would otherwise stay resident and unusable for the
-    caller's next large arrays.
-    """
-    try:
-        trim = ctypes.CDLL(None).malloc_trim
-    except (OSError, AttributeError):
-        return
-    trim(0)
-
-
 def _share_malloc_arenas() -> None:
     """Makes threads started from now on allocate from the existing malloc arenas
     instead of new ones of their own (glibc's M_ARENA_MAX = 1; a no-op elsewhere).
@@ -553,7 +541,7 @@ class _ArpaReader:
             self.pending.clear()
             if self.pool is not None:
                 self.pool.shutdown(wait=True, cancel_futures=True)
-                _release_free_memory()
+                release_free_memory()  # what the reading threads freed
 
     def _run(self, f: BinaryIO) -> ArpaModel:
         nonblank = False
