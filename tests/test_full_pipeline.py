@@ -9,6 +9,7 @@ import pathlib
 import numpy as np
 import pynini
 import pytest
+from fst_helpers import tracked_copy
 
 from netbuild.errors import Diagnostics
 from netbuild.io.fstfile import fst_to_arrays
@@ -167,20 +168,9 @@ def test_minimize_hmm_drops_a_handed_over_input_once_encoded(tmp_path, monkeypat
     from netbuild import full_pipeline
     from netbuild.guard import FstHandoff
 
-    class Tracked(pynini.Fst):
-        """A pynini FST that a weak reference can watch (the base type cannot)."""
-
     unmarked = build(_project(), tmp_path / "k", keep_intermediates=True) \
         .full.intermediates["unmarked"]
-    fst = Tracked()
-    fst.add_states(unmarked.num_states())
-    fst.set_start(unmarked.start())
-    for s in unmarked.states():
-        fst.set_final(s, unmarked.final(s))
-        for arc in unmarked.arcs(s):
-            fst.add_arc(s, arc)
-    fst.set_input_symbols(unmarked.input_symbols())
-    fst.set_output_symbols(unmarked.output_symbols())
+    fst = tracked_copy(unmarked)
     ref = weakref.ref(fst)
     alive: list[bool] = []
 

@@ -10,6 +10,7 @@ import pytest
 import random
 
 from wordgraph_helpers import demo_case, lexicon_for, normalized_bigram
+from fst_helpers import tracked_copy
 
 from netbuild.errors import DeterminizeError
 from netbuild.guard import FstHandoff, determinize_guarded, precheck_determinizable
@@ -113,23 +114,6 @@ def test_child_failure_names_likely_lexicon_cause(monkeypatch):
         determinize_guarded(lg, 300 * _MB, 20.0, lfst=lex.fst, gfst=grammar.fst)
 
 
-class _Tracked(pynini.Fst):
-    """A pynini FST that can be watched with a weak reference (the base type cannot)."""
-
-
-def _tracked_copy(fst: pynini.Fst) -> _Tracked:
-    out = _Tracked()
-    out.add_states(fst.num_states())
-    for s in fst.states():
-        for a in fst.arcs(s):
-            out.add_arc(s, pynini.Arc(a.ilabel, a.olabel, a.weight, a.nextstate))
-        out.set_final(s, fst.final(s))
-    out.set_start(fst.start())
-    out.set_input_symbols(fst.input_symbols())
-    out.set_output_symbols(fst.output_symbols())
-    return out
-
-
 @pytest.mark.parametrize("handed", [True, False])
 def test_handed_over_input_is_dropped_while_the_child_runs(monkeypatch, handed):
     """Given as an FstHandoff, the input (and the pre-check's shared conversion of it) is
@@ -137,7 +121,7 @@ def test_handed_over_input_is_dropped_while_the_child_runs(monkeypatch, handed):
     from netbuild import guard
 
     lex, grammar = demo_case()
-    lg = _tracked_copy(compose_stage(lex.fst, grammar.fst))
+    lg = tracked_copy(compose_stage(lex.fst, grammar.fst))
     expected = pynini.determinize(lg)
     ref = weakref.ref(lg)
     alive: list[bool] = []

@@ -13,10 +13,10 @@ import pynini
 import pywrapfst
 import pytest
 from wordgraph_helpers import demo_case, lexicon_for, normalized_bigram, to_log
+from fst_helpers import tracked_copy
 
 from netbuild.errors import EmptyCompositionError, InputCheckFailed
 from netbuild.footprint import fst_size
-from netbuild.guard import FstHandoff
 from netbuild.io.fstfile import fst_to_arrays
 from netbuild.options import BuildOptions
 from netbuild.pipeline import (Pipeline, Step, StageRecord, build_word_graph,
@@ -144,21 +144,6 @@ def test_pipeline_runs_checks_after_each_step():
     assert seen == [] and kept == {}  # nothing kept unless asked for
 
 
-class _Tracked(pynini.Fst):
-    """A pynini FST that can be watched with a weak reference (the base type cannot)."""
-
-
-def _tracked_copy(fst: pynini.Fst) -> _Tracked:
-    out = _Tracked()
-    out.add_states(fst.num_states())
-    for s in fst.states():
-        for a in fst.arcs(s):
-            out.add_arc(s, pynini.Arc(a.ilabel, a.olabel, a.weight, a.nextstate))
-        out.set_final(s, fst.final(s))
-    out.set_start(fst.start())
-    return out
-
-
 @pytest.mark.parametrize("hands_off", [False, True])
 @pytest.mark.parametrize("keep", [False, True])
 def test_pipeline_frees_each_result_once_the_next_stage_is_done(hands_off, keep):
@@ -168,7 +153,7 @@ def test_pipeline_frees_each_result_once_the_next_stage_is_done(hands_off, keep)
     gone: list[bool] = []
 
     def first(f, details):
-        t = _tracked_copy(f)
+        t = tracked_copy(f)
         refs.append(weakref.ref(t))
         return t
 

@@ -9,22 +9,16 @@ import pynini
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from fst_helpers import monophone_map as _cmap
+from fst_helpers import tracked_copy
 
 from netbuild.builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
                                    make_model_symbols)
 from netbuild.errors import PhoneMapError, StageError
-from netbuild.io.context_map import ContextMap, HmmState, Model
 from netbuild.io.fstfile import arrays_to_fst, fst_to_arrays
 from netbuild.symbols import BACKOFF, disambiguation_marker, make_symbol_table
 
 PHONES = make_symbol_table("phones", ["a", "b", "sil", BACKOFF, disambiguation_marker(1)])
-
-
-def _cmap(models: dict[str, list[tuple[int, float, float]]]) -> ContextMap:
-    return ContextMap(left=0, right=0, independent=[], independent_is_context=False,
-                      models={name: Model(name, tuple(HmmState(*s) for s in states), i + 1)
-                              for i, (name, states) in enumerate(models.items())},
-                      rules=[], path="test.ctx")
 
 
 CMAP = _cmap({
@@ -352,20 +346,11 @@ def test_self_loops_release_a_handed_over_input_and_share_their_arrays(monkeypat
     from netbuild.guard import FstHandoff
     from netbuild.io.fstfile import shared_arrays, shared_conversions
 
-    class Tracked(pynini.Fst):
-        """A pynini FST that a weak reference can watch (the base type cannot)."""
-
     kinds = _kinds([(0, 0.5, 0.5), (1, 0.25, 0.75)])
     base = arrays_to_fst(4, 0, [np.inf, np.inf, np.inf, 0.0], [0, 0, 0, 1, 2, 3],
                          [0, 1, 2, 2, 0, 1], [1, 0, 2, 0, 0, 0], [0.5, 0, 0, 0.25, 0, 0],
                          [1, 2, 3, 3, 3, 3])
-    fst = Tracked()
-    fst.add_states(base.num_states())
-    fst.set_start(base.start())
-    for s in base.states():
-        fst.set_final(s, base.final(s))
-        for arc in base.arcs(s):
-            fst.add_arc(s, arc)
+    fst = tracked_copy(base)
     want = _arrays(add_self_loops(base, kinds))
     ref = weakref.ref(fst)
     alive: list[bool] = []

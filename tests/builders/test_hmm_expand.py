@@ -30,11 +30,12 @@ import pytest
 import pywrapfst
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from fst_helpers import monophone_map as _cmap
 
 import netbuild.full_pipeline as full_pipeline
 from netbuild.builders.hmm import build_hmm, make_model_symbols
 from netbuild.builders.hmm_expand import expand_models, model_chains
-from netbuild.io.context_map import ContextMap, HmmState, Model
+from netbuild.io.context_map import ContextMap, HmmState
 from netbuild.io.fstfile import (arrays_to_fst, fst_to_arrays, shared_arrays,
                                  shared_conversions)
 from netbuild.project import read_project
@@ -47,13 +48,6 @@ DATA = ROOT / "tests" / "data" / "full"
 PHONES = make_symbol_table("phones", ["a", "b", BACKOFF, disambiguation_marker(1),
                                       disambiguation_marker(2)])
 WORDS = make_symbol_table("words", ["w1", "w2", "w3"])
-
-
-def _cmap(models: dict[str, list[tuple[int, float, float]]]) -> ContextMap:
-    return ContextMap(left=0, right=0, independent=[], independent_is_context=False,
-                      models={name: Model(name, tuple(HmmState(*s) for s in states), i + 1)
-                              for i, (name, states) in enumerate(models.items())},
-                      rules=[], path="test.ctx")
 
 
 CMAP = _cmap({

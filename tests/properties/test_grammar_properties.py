@@ -31,9 +31,10 @@ def rule_log10(prob: dict, bow: dict, order: int, sentence: list[str]) -> float:
     return total
 
 
-@st.composite
-def models(draw):
-    order = draw(st.integers(1, 3))
+def _draw_tables(draw, order: int, max_size: int, some_backoffs: bool):
+    """(prob, bow): log10 probabilities of every unigram and of drawn n-grams up to
+    `order`, back-off weights of the unigrams and (all, or with `some_backoffs` some)
+    of the lower-order n-grams."""
     logp = st.sampled_from([-0.1, -0.4, -0.9, -1.7, -99.0])
     logb = st.sampled_from([0.0, -0.2, -0.5, 0.3])
     prob = {(w,): draw(logp) for w in WORDS}
@@ -41,13 +42,20 @@ def models(draw):
     for k in range(2, order + 1):
         grams = draw(st.lists(st.tuples(*[st.sampled_from(WORDS[:1] + WORDS[2:])] * (k - 1),
                                         st.sampled_from(WORDS[1:])),
-                              max_size=10, unique=True))
+                              max_size=max_size, unique=True))
         for g in grams:
             if "<s>" in g[1:]:
                 continue
             prob[g] = draw(logp)
-            if k < order:
+            if k < order and (not some_backoffs or draw(st.booleans())):
                 bow[g] = draw(logb)
+    return prob, bow
+
+
+@st.composite
+def models(draw):
+    order = draw(st.integers(1, 3))
+    prob, bow = _draw_tables(draw, order, 10, some_backoffs=False)
     return order, prob, bow
 
 
@@ -79,20 +87,7 @@ def id_ordered_models(draw):
     """Models up to 4-grams whose tables list their n-grams in word-id order, as ARPA
     files usually do (G's no-sort paths), with a permutation of each table's rows."""
     order = draw(st.integers(2, 4))
-    logp = st.sampled_from([-0.1, -0.4, -0.9, -1.7, -99.0])
-    logb = st.sampled_from([0.0, -0.2, -0.5, 0.3])
-    prob = {(w,): draw(logp) for w in WORDS}
-    bow = {(w,): draw(logb) for w in WORDS if w != "</s>"}
-    for k in range(2, order + 1):
-        grams = draw(st.lists(st.tuples(*[st.sampled_from(WORDS[:1] + WORDS[2:])] * (k - 1),
-                                        st.sampled_from(WORDS[1:])),
-                              max_size=14, unique=True))
-        for g in grams:
-            if "<s>" in g[1:]:
-                continue
-            prob[g] = draw(logp)
-            if k < order and draw(st.booleans()):
-                bow[g] = draw(logb)
+    prob, bow = _draw_tables(draw, order, 14, some_backoffs=True)
     index = {w: i for i, w in enumerate(WORDS)}
     tables, shuffled = [], []
     for k in range(1, order + 1):

@@ -59,6 +59,12 @@ def _fst(arcs, lexicon, grammar) -> pynini.Fst:
     return lextree.tree_graph_fst(arcs, lexicon.phone_symbols, grammar.word_symbols)
 
 
+def _tree(lexicon, grammar) -> tuple[lextree.TreeInputs, lextree.TreeGraph]:
+    inputs, why = lextree.tree_inputs(lexicon, grammar)
+    assert inputs is not None, why
+    return inputs, lextree.build_tree_graph(inputs)
+
+
 def _canonical(fst: pynini.Fst) -> pynini.Fst:
     """Tropical push toward the start, then encoded minimization: OpenFst's minimal
     deterministic form of a weighted transducer whose output labels stay put."""
@@ -69,9 +75,7 @@ def _canonical(fst: pynini.Fst) -> pynini.Fst:
 @given(tree_case())
 def test_tree_is_the_determinized_composition(case):
     lexicon, grammar, silence = case
-    inputs, why = lextree.tree_inputs(lexicon, grammar)
-    assert inputs is not None, why
-    tree = lextree.build_tree_graph(inputs)
+    _, tree = _tree(lexicon, grammar)
     fst = _fst(tree.arcs, lexicon, grammar)
     want = pywrapfst.I_DETERMINISTIC | pywrapfst.ACCESSIBLE | pywrapfst.COACCESSIBLE
     assert fst.properties(want, True) == want
@@ -92,9 +96,7 @@ def test_tree_is_the_determinized_composition(case):
 @given(tree_case())
 def test_tree_minimization_and_push_match_openfst(case):
     lexicon, grammar, _ = case
-    inputs, why = lextree.tree_inputs(lexicon, grammar)
-    assert inputs is not None, why
-    tree = lextree.build_tree_graph(inputs)
+    _, tree = _tree(lexicon, grammar)
     arcs, potentials = lextree.minimize_tree_graph(tree)
     mine = _fst(arcs, lexicon, grammar)
     # reference: OpenFst's minimization of the same encoded acceptor (fst/minimize.h);
@@ -130,7 +132,6 @@ def test_log_divergence_on_g_level_matches_the_graph(case):
     from netbuild.pipeline import log_potentials
 
     lexicon, grammar, _ = case
-    inputs, _ = lextree.tree_inputs(lexicon, grammar)
-    tree = lextree.build_tree_graph(inputs)
+    inputs, tree = _tree(lexicon, grammar)
     fst = _fst(tree.arcs, lexicon, grammar)
     assert lextree.log_total_diverges(inputs) == (log_potentials(fst) is None)
