@@ -1,20 +1,14 @@
 """Exact byte accounting of FSTs: on disk and in memory, const and vector layouts.
 
-- `Footprint`: disk and memory bytes of one representation.
-- `SizeReport`: states, arcs and both footprints of one FST; `.to_json()`.
-- `header_bytes(fst_type, arc_type)`: bytes of OpenFst's binary FST header.
-- `symbol_table_bytes(table)`: bytes of one symbol table in binary form (inside a file).
-- `symbol_table_memory(table)`: estimated heap bytes of one loaded symbol table.
-- `footprints(states, arcs, states_with_arcs, ...)`: the formulas, from counts alone.
-- `fst_size(fst)`: the report of an FST in memory.
+- `Footprint`, `SizeReport`, `header_bytes`, `symbol_table_bytes`,
+  `symbol_table_memory`, `footprints`, `state_counts`, `fst_size`: re-exported from
+  `netbuild.footprint` (the formulas and the report of an FST in memory).
 - `file_size(path)`: the report of an FST file (states and arcs counted without a copy).
 - `build_sizes(directory)`: the report of every FST a build manifest names.
 - `check_budget(bytes_needed, budget)`: whether a size fits a budget, and the margin.
 
-The formulas, `SizeReport`, `state_counts` and `fst_size` live in
-`netbuild.footprint` (below the pipeline, which records each stage's size
-with them; the derivation of the formulas is in its docstring) and are
-re-exported here.
+They live in `netbuild.footprint`, below the pipeline, which records each stage's
+size with them; the derivation of the formulas is in its docstring.
 """
 
 from __future__ import annotations
