@@ -63,8 +63,8 @@ Kind = tuple[int, float, float]  # (emission class, self-loop probability, forwa
 class KindTable:
     """The arc kinds of H and the label tables H is built with.
 
-    `kinds[i]` is kind id ``i + 1``. `symbols` is H's input table: epsilon, ``k1 ..
-    kK``, then the auxiliary markers (ids ``K + 1 ..``). `markers` are the marker
+    `kinds[i]` is kind id ``i + 1``. `symbols` is H's input table: epsilon, ``kind1 ..
+    kindK``, then the auxiliary markers (ids ``K + 1 ..``). `markers` are the marker
     names in table order. `num_classes` is one more than the largest emission class.
     """
 
@@ -147,7 +147,7 @@ def build_hmm(cmap: ContextMap, model_symbols: pynini.SymbolTable
             olab.append(mid if i == 0 else 0)
     kinds = list(kind_ids)
     markers = _markers_of(model_symbols)
-    table = make_symbol_table("kinds", [*(f"k{i}" for i in range(1, len(kinds) + 1)),
+    table = make_symbol_table("kinds", [*(f"kind{i}" for i in range(1, len(kinds) + 1)),
                                         *markers])
     for name in markers:
         src.append(0)

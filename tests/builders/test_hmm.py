@@ -164,7 +164,7 @@ def _same_weighted_relation(f1: pynini.Fst, f2: pynini.Fst, num_labels: int,
 
 
 def _kinds(triples: list[tuple[int, float, float]]) -> KindTable:
-    table = make_symbol_table("kinds", [f"k{i}" for i in range(1, len(triples) + 1)])
+    table = make_symbol_table("kinds", [f"kind{i}" for i in range(1, len(triples) + 1)])
     return KindTable(list(triples), table, [], 1 + max(t[0] for t in triples))
 
 
