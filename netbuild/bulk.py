@@ -5,6 +5,11 @@
   iteration diverges.
 - `reachable(num_nodes, src, dst, seeds)`: the nodes reachable from `seeds`, breadth
   first, in bulk.
+- State signatures for bulk minimization: `mix_hash(x, seed)` (splitmix64),
+  `combine_hash(*fields, seed)` (one 64-bit hash per row of fields), `weight_bits(w)`
+  (float32 weights as comparable integers), `sum_by_owner(values, owner, n)` (an
+  order-free combination of a state's arc hashes), `hash_classes(h1, h2)` (dense ids of
+  equal signature pairs).
 """
 
 from __future__ import annotations
@@ -94,3 +99,65 @@ def reachable(num_nodes: int, src: np.ndarray, dst: np.ndarray, seeds: np.ndarra
         seen[nxt] = True
         frontier = nxt
     return seen
+
+
+_M1, _M2 = np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB)
+
+
+def mix_hash(x: np.ndarray, seed: int) -> np.ndarray:
+    """splitmix64 finalizer of `x` (uint64) offset by `seed`."""
+    with np.errstate(over="ignore"):
+        x = x.astype(np.uint64) + np.uint64((0x9E3779B97F4A7C15 * (seed + 1)) % 2**64)
+        x = (x ^ (x >> np.uint64(30))) * _M1
+        x = (x ^ (x >> np.uint64(27))) * _M2
+        return x ^ (x >> np.uint64(31))
+
+
+def combine_hash(*fields: np.ndarray, seed: int) -> np.ndarray:
+    """One 64-bit hash per row of the equal-length integer arrays `fields`."""
+    h = np.zeros(len(fields[0]), dtype=np.uint64)
+    with np.errstate(over="ignore"):
+        for i, f in enumerate(fields):
+            h = mix_hash(h ^ mix_hash(np.asarray(f).astype(np.int64).view(np.uint64),
+                                      seed + 7 * i), seed)
+    return h
+
+
+def weight_bits(weights: np.ndarray) -> np.ndarray:
+    """The float32 bit patterns of `weights` as int64 (so equal weights hash equal)."""
+    w = np.asarray(weights, dtype=np.float32).copy()
+    w[w == 0] = 0.0  # -0.0 and 0.0 are one weight
+    return w.view(np.uint32).astype(np.int64)
+
+
+def hash_classes(h1: np.ndarray, h2: np.ndarray) -> np.ndarray:
+    """Dense class ids of the (h1, h2) pairs (ids follow the order of h1, then h2)."""
+    if len(h1) == 0:
+        return np.zeros(0, dtype=np.int64)
+    order = np.argsort(h1, kind="stable")
+    a, b = h1[order], h2[order]
+    step = np.ones(len(a), dtype=bool)
+    step[1:] = a[1:] != a[:-1]
+    run = np.cumsum(step) - 1
+    if not np.array_equal(b, b[np.flatnonzero(step)][run]):
+        # Two pairs share h1 but not h2 (a 64-bit collision): order by both.
+        order = np.lexsort((h2, h1))
+        a, b = h1[order], h2[order]
+        step[1:] = (a[1:] != a[:-1]) | (b[1:] != b[:-1])
+        run = np.cumsum(step) - 1
+    ids = np.empty(len(a), dtype=np.int64)
+    ids[order] = run
+    return ids
+
+
+def sum_by_owner(values: np.ndarray, owner: np.ndarray, n: int) -> np.ndarray:
+    """Per owner, the sum of its values modulo 2**64 (owners sorted: one reduceat)."""
+    out = np.zeros(n, dtype=np.uint64)
+    if len(owner) == 0:
+        return out
+    if np.all(owner[1:] >= owner[:-1]):
+        starts = np.flatnonzero(np.r_[True, owner[1:] != owner[:-1]])
+        out[owner[starts]] = np.add.reduceat(values, starts)
+        return out
+    np.add.at(out, owner, values)  # wraps modulo 2**64
+    return out

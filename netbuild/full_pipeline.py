@@ -52,6 +52,7 @@ import time
 from collections.abc import Callable, Mapping
 from typing import TYPE_CHECKING
 
+import numpy as np
 import pynini
 import pywrapfst
 
@@ -59,21 +60,25 @@ from . import checks as chk
 from .builders.context import build_context
 from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
                            make_model_symbols)
-from .builders.hmm_expand import expand_arrays, expanded_fst, model_chains
+from .builders.hmm_expand import (ModelChains, code_classes, expand_arrays, expanded_fst,
+                                  model_chains, trie_arrays)
 from .errors import EmptyCompositionError, StageError
 from .guard import FstHandoff
 from .io.context_map import ContextMap
-from .io.fstfile import forget_shared, fst_to_arrays
+from .io.fstfile import FstArrays, arrays_to_fst, forget_shared, fst_to_arrays, share_arrays
 from .memory import release_free_memory
 from .options import BuildOptions
 from .pipeline import (Pipeline, StageRecord, Step, WordGraph, _input_record,
                        determinize_stage)
+from .refine import minimize_arrays
 
 if TYPE_CHECKING:
     from .builders.lexicon import LexiconResult
 
 __all__ = ["FullGraph", "build_full_graph", "full_pipeline", "minimize_unmarked_stage",
-           "remove_markers_stage"]
+           "model_level_plan", "optimizes_at_model_level", "remove_markers_stage"]
+
+MODEL_LEVEL_STAGES = ("determinize-models", "remove-markers", "minimize-models")
 
 
 @dataclasses.dataclass
@@ -148,32 +153,78 @@ def minimize_unmarked_stage(ifst: pynini.Fst | FstHandoff) -> pynini.Fst:
     return ofst
 
 
+def model_level_plan(hfst: pynini.Fst, opts: BuildOptions
+                     ) -> tuple[ModelChains, np.ndarray] | None:
+    """Returns H's chains and each model's chain class when the full graph is optimized
+    at the model level (``final_optimize``, H of `build_hmm`'s shape, chains a prefix
+    code: `netbuild.builders.hmm_expand`), else None (determinized over arc kinds)."""
+    if not opts.final_optimize:
+        return None
+    chains = model_chains(hfst)
+    if chains is None:
+        return None
+    classes = code_classes(chains)
+    return None if classes is None else (chains, classes)
+
+
+def optimizes_at_model_level(cmap: ContextMap, phones: pynini.SymbolTable,
+                             opts: BuildOptions) -> bool:
+    """Whether `build_full_graph` takes the model-level path for this map (H is cheap to
+    build: one chain per model)."""
+    hfst, _ = build_hmm(cmap, make_model_symbols(cmap, phones))
+    return model_level_plan(hfst, opts) is not None
+
+
+def _fst_of(arrays: FstArrays) -> pynini.Fst:
+    """The FST of `arrays`, which become its shared conversion (read by its checks)."""
+    ofst = arrays_to_fst(arrays.num_states, arrays.start, arrays.final_weights, arrays.src,
+                         arrays.ilabel, arrays.olabel, arrays.weight, arrays.dst,
+                         isymbols=arrays.isymbols, osymbols=arrays.osymbols,
+                         arc_type=arrays.arc_type)  # type: ignore[arg-type]
+    share_arrays(ofst, arrays)
+    return ofst
+
+
+def _take_arrays(given: FstHandoff) -> FstArrays:
+    """The arrays of the handed-over FST, which is then dropped."""
+    f = given.take()
+    arrays = fst_to_arrays(f)
+    forget_shared(f)
+    del f
+    release_free_memory()
+    return arrays
+
+
 _STRUCTURE = (chk.check_nonempty, chk.check_connected, chk.check_labels)
 _CONNECTED = pywrapfst.ACCESSIBLE | pywrapfst.COACCESSIBLE
+
+
+def _measured(stage: Callable[[pynini.Fst, dict], pynini.Fst], handoff: bool = False
+              ) -> Callable[[FstHandoff, dict], pynini.Fst]:
+    """The stage, then its output's deviation; the input is handed over (steps are
+    `hands_off`) and, unless `handoff` passes it on to the stage, freed with any
+    conversion of it as soon as the stage returns."""
+    def run(given: FstHandoff, details: dict) -> pynini.Fst:
+        if handoff:
+            out = stage(given, details)
+        else:
+            f = given.take()
+            out = stage(f, details)
+            if f is not out:
+                forget_shared(f)
+            del f
+            release_free_memory()
+        details["stochastic_deviation"] = chk.stochasticity_deviation(out)
+        return out
+    return run
 
 
 def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
                   opts: BuildOptions) -> Pipeline:
     """Returns the pipeline from the word-level graph to the full graph (see module)."""
-
-    def measured(stage: Callable[[pynini.Fst, dict], pynini.Fst], handoff: bool = False
-                 ) -> Callable[[FstHandoff, dict], pynini.Fst]:
-        """The stage, then its output's deviation; the input is handed over (steps are
-        `hands_off`) and, unless `handoff` passes it on to the stage, freed with any
-        conversion of it as soon as the stage returns."""
-        def run(given: FstHandoff, details: dict) -> pynini.Fst:
-            if handoff:
-                out = stage(given, details)
-            else:
-                f = given.take()
-                out = stage(f, details)
-                if f is not out:
-                    forget_shared(f)
-                del f
-                release_free_memory()
-            details["stochastic_deviation"] = chk.stochasticity_deviation(out)
-            return out
-        return run
+    plan = model_level_plan(hfst, opts)
+    if plan is not None:
+        return _model_level_pipeline(cfst, plan, kind_table, opts)
 
     def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
         return _compose(cfst, lg, "compose-context", "C∘LG")
@@ -217,24 +268,85 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
     deterministic = _STRUCTURE + (chk.check_input_deterministic,)
     # Every step hands its input over (see `measured`), so it is freed when its stage
     # is done with it unless the pipeline was asked to keep it.
-    steps = [Step("compose-context", measured(compose_context), _STRUCTURE, "clg",
+    steps = [Step("compose-context", _measured(compose_context), _STRUCTURE, "clg",
                   hands_off=True),
-             Step("compose-hmm", measured(compose_hmm, handoff=True), _STRUCTURE,
+             Step("compose-hmm", _measured(compose_hmm, handoff=True), _STRUCTURE,
                   "hclg_raw", hands_off=True)]
     if opts.final_optimize:
-        steps.append(Step("determinize-hmm", measured(determinize, handoff=True),
+        steps.append(Step("determinize-hmm", _measured(determinize, handoff=True),
                           deterministic, "determinized_full", hands_off=True))
-    steps.append(Step("remove-markers", measured(unmark),
+    steps.append(Step("remove-markers", _measured(unmark),
                       _STRUCTURE + (chk.check_no_auxiliary_markers,), "unmarked",
                       hands_off=True))
     if opts.final_optimize:
-        steps.append(Step("minimize-hmm", measured(minimize, handoff=True),
+        steps.append(Step("minimize-hmm", _measured(minimize, handoff=True),
                           _STRUCTURE + (chk.check_no_auxiliary_markers,), "minimized_full",
                           hands_off=True))
-    steps.append(Step("self-loops", measured(self_loops, handoff=True),
+    steps.append(Step("self-loops", _measured(self_loops, handoff=True),
                       _STRUCTURE + (chk.check_no_auxiliary_markers, chk.check_emission_inputs,
                                     chk.check_word_outputs), hands_off=True))
     return Pipeline(steps)
+
+
+def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray],
+                          kind_table: KindTable, opts: BuildOptions) -> Pipeline:
+    """The optimized pipeline at the model level (module docstring, "Model level")."""
+    chains, classes = plan
+    merged = [(m, int(c)) for m, c in enumerate(classes.tolist()) if c != m]
+
+    def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
+        clg = _compose(cfst, lg, "compose-context", "C∘LG")
+        details["merged_models"] = len(merged)
+        if merged:  # models with one chain become one label (they are indistinguishable)
+            clg.relabel_pairs(ipairs=merged)
+            clg.arcsort(sort_type="ilabel")
+        return clg
+
+    def determinize(f: FstHandoff, details: dict) -> pynini.Fst:
+        return determinize_stage(f, opts, details=details)  # drops f once written
+
+    def unmark(given: FstHandoff, details: dict) -> pynini.Fst:
+        details["markers"] = list(kind_table.markers)
+        arrays = _take_arrays(given)
+        table = arrays.isymbols
+        marker_ids = np.array([table.find(m) for m in kind_table.markers], dtype=np.int64)
+        ilabel = arrays.ilabel.copy()
+        ilabel[np.isin(ilabel, marker_ids[marker_ids > 0])] = 0
+        return _fst_of(dataclasses.replace(arrays, ilabel=ilabel))
+
+    def minimize(given: FstHandoff, details: dict) -> pynini.Fst:
+        details["method"] = "refinement"
+        return _fst_of(minimize_arrays(_take_arrays(given)))
+
+    def expand(given: FstHandoff, details: dict) -> pynini.Fst:
+        details["method"] = "trie"
+        out = trie_arrays(_take_arrays(given), chains)
+        if out is None:  # only models and epsilon are left after remove-markers
+            raise StageError("expand-hmm", "the model-level graph has a label that is "
+                             "not a model", "this is a netbuild bug")
+        return expanded_fst(out, connected=True)
+
+    def self_loops(f: FstHandoff, details: dict) -> pynini.Fst:
+        details["transition_scale"] = opts.transition_scale
+        details["kinds"] = kind_table.num_kinds
+        return add_self_loops(f, kind_table, opts.transition_scale)
+
+    deterministic = _STRUCTURE + (chk.check_input_deterministic,)
+    unmarked = _STRUCTURE + (chk.check_no_auxiliary_markers,)
+    return Pipeline([
+        Step("compose-context", _measured(compose_context), _STRUCTURE, "clg",
+             hands_off=True),
+        Step("determinize-models", _measured(determinize, handoff=True), deterministic,
+             "determinized_models", hands_off=True),
+        Step("remove-markers", _measured(unmark, handoff=True), unmarked, "unmarked",
+             hands_off=True),
+        Step("minimize-models", _measured(minimize, handoff=True), unmarked,
+             "minimized_models", hands_off=True),
+        Step("expand-hmm", _measured(expand, handoff=True), unmarked, "expanded",
+             hands_off=True),
+        Step("self-loops", _measured(self_loops, handoff=True),
+             unmarked + (chk.check_emission_inputs, chk.check_word_outputs),
+             hands_off=True)])
 
 
 def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: ContextMap,
@@ -287,8 +399,10 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
 
     emissions = emission_symbols(kinds)
 
+    model_level = model_level_plan(hfst, opts) is not None
+
     def context(stage: str) -> chk.CheckContext:
-        if stage == "compose-context":
+        if stage == "compose-context" or (model_level and stage in MODEL_LEVEL_STAGES):
             return chk.CheckContext(stage, models, words)
         if stage == "self-loops":
             return chk.CheckContext(stage, emissions, words)

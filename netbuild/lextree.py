@@ -58,7 +58,8 @@ import math
 import numpy as np
 import pynini
 
-from .bulk import reachable, unique_sorted, value_iteration
+from .bulk import (combine_hash, hash_classes, mix_hash, reachable, sum_by_owner,
+                   unique_sorted, value_iteration, weight_bits)
 from .builders.grammar import GrammarResult
 from .builders.lexicon import LexiconResult, Pronunciations
 from .errors import EmptyCompositionError
@@ -543,53 +544,6 @@ def _empty() -> EmptyCompositionError:
 
 # ------------------------------------------------------------------ minimization
 
-_M1, _M2 = np.uint64(0xBF58476D1CE4E5B9), np.uint64(0x94D049BB133111EB)
-
-
-def _mix(x: np.ndarray, seed: int) -> np.ndarray:
-    """splitmix64 finalizer of `x` (uint64) offset by `seed`."""
-    with np.errstate(over="ignore"):
-        x = x.astype(np.uint64) + np.uint64((0x9E3779B97F4A7C15 * (seed + 1)) % 2**64)
-        x = (x ^ (x >> np.uint64(30))) * _M1
-        x = (x ^ (x >> np.uint64(27))) * _M2
-        return x ^ (x >> np.uint64(31))
-
-
-def _combine(*fields: np.ndarray, seed: int) -> np.ndarray:
-    h = np.zeros(len(fields[0]), dtype=np.uint64)
-    with np.errstate(over="ignore"):
-        for i, f in enumerate(fields):
-            h = _mix(h ^ _mix(np.asarray(f).astype(np.int64).view(np.uint64), seed + 7 * i),
-                     seed)
-    return h
-
-
-def _bits(weights: np.ndarray) -> np.ndarray:
-    w = np.asarray(weights, dtype=np.float32).copy()
-    w[w == 0] = 0.0  # -0.0 and 0.0 are one weight
-    return w.view(np.uint32).astype(np.int64)
-
-
-def _classes(h1: np.ndarray, h2: np.ndarray) -> np.ndarray:
-    """Dense class ids of the (h1, h2) pairs (ids follow the order of h1, then h2)."""
-    if len(h1) == 0:
-        return np.zeros(0, dtype=np.int64)
-    order = np.argsort(h1, kind="stable")
-    a, b = h1[order], h2[order]
-    step = np.ones(len(a), dtype=bool)
-    step[1:] = a[1:] != a[:-1]
-    run = np.cumsum(step) - 1
-    if not np.array_equal(b, b[np.flatnonzero(step)][run]):
-        # Two pairs share h1 but not h2 (a 64-bit collision): order by both.
-        order = np.lexsort((h2, h1))
-        a, b = h1[order], h2[order]
-        step[1:] = (a[1:] != a[:-1]) | (b[1:] != b[:-1])
-        run = np.cumsum(step) - 1
-    ids = np.empty(len(a), dtype=np.int64)
-    ids[order] = run
-    return ids
-
-
 def _refine_boundary(tree: TreeGraph) -> np.ndarray:
     """Class of each boundary state (coarsest stable partition on G's level).
 
@@ -611,48 +565,36 @@ def _refine_boundary(tree: TreeGraph) -> np.ndarray:
 
     word_arc = (g.ilabel != inputs.backoff_word) & (inputs.prons_per_word[g.ilabel] > 0)
     gs, gd = g.src[word_arc].astype(np.int64), g.dst[word_arc].astype(np.int64)
-    gw, gc = g.ilabel[word_arc].astype(np.int64), _bits(g.weight[word_arc])
+    gw, gc = g.ilabel[word_arc].astype(np.int64), weight_bits(g.weight[word_arc])
     end = index[gd + (ng if branch else 0)]
     owners = [index[gs]] + ([index[gs + ng]] if copies else [])
 
     bb = (a.src < nb) & (a.dst < nb)
     b_src, b_dst = a.src[bb].astype(np.int64), a.dst[bb].astype(np.int64)
-    b_base = [_combine(a.ilabel[bb], a.olabel[bb], _bits(a.weight[bb]), seed=seed + 2)
+    b_base = [combine_hash(a.ilabel[bb], a.olabel[bb], weight_bits(a.weight[bb]),
+                           seed=seed + 2)
               for seed in (1, 2)]
-    w_base = [_combine(gw, gc, seed=seed) for seed in (1, 2)]
+    w_base = [combine_hash(gw, gc, seed=seed) for seed in (1, 2)]
     spells = [(own, (own >= 0) & (end >= 0)) for own in owners]
-    fbits = _bits(a.final_weights[:nb])
+    fbits = weight_bits(a.final_weights[:nb])
     cls = np.zeros(nb, dtype=np.int64)
     count = 1
     while True:
         totals = []
         for i, seed in enumerate((1, 2)):
             end_cls = cls[np.maximum(end, 0)]
-            k = _mix(w_base[i] ^ _mix(end_cls.view(np.uint64), seed), seed)
+            k = mix_hash(w_base[i] ^ mix_hash(end_cls.view(np.uint64), seed), seed)
             total = np.zeros(nb, dtype=np.uint64)
             for own, ok in spells:
-                total += _sum_by_owner(k[ok], own[ok], nb)
-            kb = _mix(b_base[i] ^ _mix(cls[b_dst].view(np.uint64), seed + 2), seed + 2)
-            total += _sum_by_owner(kb, b_src, nb)
-            totals.append(_combine(cls, fbits, silence, total.view(np.int64), seed=seed + 4))
-        new = _classes(*totals)
+                total += sum_by_owner(k[ok], own[ok], nb)
+            kb = mix_hash(b_base[i] ^ mix_hash(cls[b_dst].view(np.uint64), seed + 2), seed + 2)
+            total += sum_by_owner(kb, b_src, nb)
+            totals.append(combine_hash(cls, fbits, silence, total.view(np.int64), seed=seed + 4))
+        new = hash_classes(*totals)
         new_count = int(new.max(initial=-1)) + 1
         if new_count == count:
             return new
         cls, count = new, new_count
-
-
-def _sum_by_owner(values: np.ndarray, owner: np.ndarray, n: int) -> np.ndarray:
-    """Per owner, the sum of its values modulo 2**64 (owners sorted: one reduceat)."""
-    out = np.zeros(n, dtype=np.uint64)
-    if len(owner) == 0:
-        return out
-    if np.all(owner[1:] >= owner[:-1]):
-        starts = np.flatnonzero(np.r_[True, owner[1:] != owner[:-1]])
-        out[owner[starts]] = np.add.reduceat(values, starts)
-        return out
-    np.add.at(out, owner, values)  # wraps modulo 2**64
-    return out
 
 
 def minimize_tree_graph(tree: TreeGraph) -> tuple[FstArrays, np.ndarray | None]:
@@ -667,7 +609,7 @@ def minimize_tree_graph(tree: TreeGraph) -> tuple[FstArrays, np.ndarray | None]:
     next_cls = int(cls[:nb].max(initial=-1)) + 1
     src = a.src.astype(np.int64)
     dst = a.dst.astype(np.int64)
-    wbits = _bits(a.weight)
+    wbits = weight_bits(a.weight)
     arc_height = np.zeros(len(src), dtype=np.int64)
     inner = src >= nb
     arc_height[inner] = tree.height[src[inner] - nb]
@@ -689,11 +631,11 @@ def minimize_tree_graph(tree: TreeGraph) -> tuple[FstArrays, np.ndarray | None]:
         degree = np.bincount(owner, minlength=len(nodes))
         signatures = []
         for seed in (11, 12):  # two independent 64-bit signatures per node
-            arc_hash = _combine(a.ilabel[sel], a.olabel[sel], wbits[sel], cls[dst[sel]],
+            arc_hash = combine_hash(a.ilabel[sel], a.olabel[sel], wbits[sel], cls[dst[sel]],
                                 seed=seed)
-            total = _sum_by_owner(arc_hash, owner, len(nodes))
-            signatures.append(_combine(total.view(np.int64), degree, seed=seed + 2))
-        c = _classes(*signatures)
+            total = sum_by_owner(arc_hash, owner, len(nodes))
+            signatures.append(combine_hash(total.view(np.int64), degree, seed=seed + 2))
+        c = hash_classes(*signatures)
         cls[nodes] = next_cls + c
         next_cls += int(c.max()) + 1
     # One representative (the first state) per class keeps its arcs. Classes are

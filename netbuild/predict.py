@@ -6,7 +6,7 @@
 - `predict_graph_size(project, fractions=None, seed=0)`: the prediction.
 - `MemoryGuard(limit, order)`: a progress callback that stops a build before a stage
   whose estimated need (`stage_need`) exceeds the limit; `stage_order(opts)`,
-  `full_stage_order(opts)`: the stage names a build emits.
+  `full_stage_order(opts, model_level)`: the stage names a build emits.
 
 Method (docs/size.md has the measurements). The final graph grows with the word-level
 graph det(L∘G), and that is cheap to build in full (netbuild.lextree builds it
@@ -350,6 +350,11 @@ STAGE_GROWTH: dict[str, tuple[float, float]] = {
     "determinize-hmm": (1.5, 3.0),
     "remove-markers": (1.0, 2.0),
     "minimize-hmm": (1.0, 3.0),
+    # The model-level path: the child determinizes C∘LG; the rest are array passes
+    # (input arrays, output arrays and the output FST).
+    "determinize-models": (1.5, 3.0),
+    "minimize-models": (1.0, 3.0),
+    "expand-hmm": (3.0, 3.0),
     "self-loops": (2.0, 2.0),
 }
 _INPUT_BUILDS = ("grammar", "lexicon", "context", "hmm")  # cheap; not guarded
@@ -374,8 +379,12 @@ def stage_order(opts, tree: bool = False) -> list[str]:
     return order
 
 
-def full_stage_order(opts) -> list[str]:
-    """Returns the names of the full-graph stage records, in order (after the word graph)."""
+def full_stage_order(opts, model_level: bool = True) -> list[str]:
+    """Returns the names of the full-graph stage records, in order (after the word graph);
+    `model_level`: optimized over models (`netbuild.full_pipeline.model_level_plan`)."""
+    if opts.final_optimize and model_level:
+        return ["context", "hmm", "compose-context", "determinize-models",
+                "remove-markers", "minimize-models", "expand-hmm", "self-loops"]
     order = ["context", "hmm", "compose-context", "compose-hmm"]
     if opts.final_optimize:
         order.append("determinize-hmm")

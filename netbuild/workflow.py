@@ -91,7 +91,7 @@ from .io.phones import PhoneInventory, inventory_from_lexicon, read_phones
 from .io.context_map import ContextMap, read_context_map
 from .builders.contexts import Coverage, check_coverage
 from .builders.context import window_models
-from .full_pipeline import FullGraph, build_full_graph
+from .full_pipeline import FullGraph, build_full_graph, optimizes_at_model_level
 from .pipeline import StageRecord, WordGraph, build_word_graph
 from .lextree import tree_inputs
 from .predict import MemoryGuard, full_stage_order, stage_order
@@ -473,8 +473,10 @@ def build(project: Project, out_dir: str | os.PathLike,
         if opts.max_memory:
             tree = opts.word_graph == "tree" and \
                 tree_inputs(lexicon, grammar)[0] is not None
-            order = stage_order(opts, tree) + (full_stage_order(opts)
-                                               if inputs.cmap is not None else [])
+            order = stage_order(opts, tree)
+            if inputs.cmap is not None:
+                order += full_stage_order(opts, optimizes_at_model_level(
+                    inputs.cmap, lexicon.phone_symbols, opts))
             guard = MemoryGuard(opts.max_memory, order)
 
         def on_stage(record: StageRecord) -> None:

@@ -38,8 +38,8 @@ def _build(tmp_path, name="out", **kw):
 def test_full_build_passes_its_checks_and_leaves_no_marker(tmp_path, ctx):
     result = _build(tmp_path, ctx=ctx)
     names = [s["name"] for s in result.manifest["stages"]]
-    assert names[-8:] == ["context", "hmm", "compose-context", "compose-hmm",
-                          "determinize-hmm", "remove-markers", "minimize-hmm", "self-loops"]
+    assert names[-8:] == ["context", "hmm", "compose-context", "determinize-models",
+                          "remove-markers", "minimize-models", "expand-hmm", "self-loops"]
     fst = result.full.fst
     arcs = fst_to_arrays(fst)
     isyms, osyms = fst.input_symbols(), fst.output_symbols()
@@ -48,8 +48,8 @@ def test_full_build_passes_its_checks_and_leaves_no_marker(tmp_path, ctx):
     assert not any(is_auxiliary(osyms.find(int(k))) for k in np.unique(arcs.olabel) if k)
     used = {isyms.find(int(k)) for k in np.unique(arcs.ilabel) if k}
     assert used and all(not is_auxiliary(s) for s in used)
-    # Determinization of H∘C∘LG went through (the delay of C keeps it determinizable).
-    det = next(s for s in result.manifest["stages"] if s["name"] == "determinize-hmm")
+    # Determinization of C∘LG went through (the delay of C keeps it determinizable).
+    det = next(s for s in result.manifest["stages"] if s["name"] == "determinize-models")
     assert det["states"] > 0
     for s in result.manifest["stages"][-6:]:
         assert "stochastic_deviation" in s["details"]

@@ -248,8 +248,8 @@ def test_build_writes_directory_and_manifest(first_build):
 _STAGE_FST = {"grammar": "grammar", "lexicon": "lexicon", "compose-determinize": "determinized",
               "minimize": "minimized", "push": "pushed",
               "context": "context", "hmm": "hmm", "compose-context": "clg",
-              "compose-hmm": "hclg_raw", "determinize-hmm": "determinized_full",
-              "remove-markers": "unmarked", "minimize-hmm": "minimized_full",
+              "determinize-models": "determinized_models", "remove-markers": "unmarked",
+              "minimize-models": "minimized_models", "expand-hmm": "expanded",
               "self-loops": "graph"}
 
 

@@ -50,7 +50,7 @@ import numpy as np
 import pynini
 import pywrapfst
 
-from ..bulk import unique_sorted
+from ..bulk import combine_hash, hash_classes, sum_by_owner, unique_sorted, weight_bits
 from ..io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, share_arrays
 from ..symbols import is_auxiliary
 
@@ -271,3 +271,172 @@ def expanded_fst(arrays: FstArrays, connected: bool = False) -> pynini.Fst:
         return ofst
     share_arrays(ofst, a)
     return ofst
+
+
+# ------------------------------------------------------- expansion after determinization
+#
+# Determinizing H∘CLG over arc kinds is the same as determinizing CLG over models and
+# then expanding each state's model arcs into a trie of their kind chains, provided
+# the chains form a prefix code (no model's chain is a proper prefix of another's;
+# models with equal chains are first made one label). Why: from a subset of the
+# kind-level determinization that sits between models (a "junction"), reading a
+# model's whole chain leads to exactly the subset that reading the model leads to
+# over models, with the same residual weights and outputs; the states in between
+# are the trie's nodes, one per distinct (junction, chain prefix). The trie places
+# weights and outputs where that determinization places them: the arc into a node
+# carries the smallest weight below it minus what the path already carries, and a
+# word goes on the first arc below which every arc writes it. Minimizing at the model
+# level first and merging equal trie nodes afterwards gives the kinds-level minimum
+# for chains of one length: two junctions have the same expanded future exactly when
+# their model-level futures agree, and a node can never equal a junction, since every
+# path from a junction to a final state has a length that is a multiple of the chain
+# length and no path from a node does. The model-level graph is about a third of the
+# kind-level one, and OpenFst's determinization and minimization are the costly steps.
+
+
+def code_classes(chains: ModelChains) -> np.ndarray | None:
+    """Returns, per model id, the id of the first model with the same kind chain
+    (itself for most; unchanged for labels that are not models), or None when some
+    chain is a proper prefix of another, where a trie node would also be a chain's end.
+    """
+    rep = np.arange(chains.num_labels, dtype=np.int64)
+    models = np.flatnonzero(chains.length > 0)
+    if models.shape[0] == 0:
+        return rep
+    lengths = chains.length[models]
+    longest = int(lengths.max())
+    column = np.arange(longest)[None, :]
+    padded = np.zeros((models.shape[0], longest), dtype=np.int64)  # kinds are >= 1
+    inside = column < lengths[:, None]
+    padded[inside] = chains.kinds[(chains.offset[models][:, None] + column)[inside]]
+    order = np.lexsort(padded.T[::-1])  # rows in lexicographic order, 0 (end) first
+    rows, lens, ids = padded[order], lengths[order], models[order]
+    same = np.ones(rows.shape[0], dtype=bool)
+    same[1:] = (rows[1:] == rows[:-1]).all(axis=1)
+    same[0] = False
+    group = np.cumsum(~same) - 1
+    first = np.full(int(group[-1]) + 1, chains.num_labels, dtype=np.int64)
+    np.minimum.at(first, group, ids)
+    rep[ids] = first[group]
+    # Sorted with 0 past each end, a chain sorts before its extensions, and everything
+    # between them extends it too: neighbours suffice.
+    distinct = np.flatnonzero(~same)
+    u, v = distinct[:-1], distinct[1:]
+    shorter = lens[u] < lens[v]
+    agree = ((rows[u] == rows[v]) | (column >= lens[u][:, None])).all(axis=1)
+    if (shorter & agree).any():
+        return None
+    return rep
+
+
+def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
+    """Returns the kinds-level graph of the model-level graph `a` (arcs grouped by
+    state, model labels unique per state, markers already epsilon): each state's model
+    arcs expanded into the trie of their kind chains, equal trie nodes merged.
+
+    The chains must be a prefix code (`code_classes` is not None) and `a`'s equal-chain
+    models one label. States 0 .. ``a.num_states - 1`` are `a`'s, then the trie nodes;
+    arcs are grouped by state and sorted by input label. None when `a` has a label
+    that is neither epsilon nor a model of `chains`.
+    """
+    q = a.num_states
+    il = a.ilabel.astype(np.int64)
+    lab = np.where(il < chains.num_labels, il, 0)
+    n = chains.length[lab]
+    if not ((il == 0) | (n > 0)).all():
+        return None
+    model = np.flatnonzero(n > 0)
+    plain = np.flatnonzero(n == 0)  # epsilon arcs stay as they are
+    m_lab, m_n = lab[model], n[model]
+    m_weight = a.weight[model].astype(np.float64)
+    m_out = a.olabel[model].astype(np.int64)
+    parent = a.src[model].astype(np.int64)
+    parent_weight = np.zeros(model.shape[0])  # what the path to the parent carries
+    parent_uniform = np.zeros(model.shape[0], dtype=bool)  # its word already written
+    parts = [(a.src[plain].astype(np.int64), il[plain], a.olabel[plain].astype(np.int64),
+              a.weight[plain].astype(np.float64), a.dst[plain].astype(np.int64))]
+    depth_cuts = [q]
+    next_id = q
+    for j in range(int(m_n.max(initial=0))):
+        kind = np.zeros(model.shape[0], dtype=np.int64)
+        going = np.flatnonzero(m_n > j)
+        kind[going] = chains.kinds[chains.offset[m_lab[going]] + j]
+        leaf = going[m_n[going] == j + 1]
+        parts.append((parent[leaf], kind[leaf],
+                      np.where(parent_uniform[leaf], 0, m_out[leaf]),
+                      m_weight[leaf] - parent_weight[leaf], a.dst[model[leaf]].astype(np.int64)))
+        inner = going[m_n[going] > j + 1]
+        if inner.shape[0] == 0:
+            continue
+        key = parent[inner] << 32 | kind[inner]
+        order = np.argsort(key, kind="stable")
+        skey = key[order]
+        starts = np.ones(skey.shape[0], dtype=bool)
+        np.not_equal(skey[1:], skey[:-1], out=starts[1:])
+        first = np.flatnonzero(starts)
+        node_of = np.empty(inner.shape[0], dtype=np.int64)
+        node_of[order] = np.cumsum(starts) - 1
+        members = inner[order]
+        lowest = np.minimum.reduceat(m_weight[members], first)
+        out_min = np.minimum.reduceat(m_out[members], first)
+        uniform = out_min == np.maximum.reduceat(m_out[members], first)
+        above_weight = parent_weight[members[first]]
+        above_uniform = parent_uniform[members[first]]
+        count = first.shape[0]
+        parts.append((skey[first] >> 32, skey[first] & 0xFFFFFFFF,
+                      np.where(uniform & ~above_uniform, out_min, 0),
+                      lowest - above_weight, np.arange(next_id, next_id + count)))
+        parent[inner] = next_id + node_of
+        parent_weight[inner] = lowest[node_of]
+        parent_uniform[inner] = (uniform | above_uniform)[node_of]
+        next_id += count
+        depth_cuts.append(next_id)
+    del parent, parent_weight, parent_uniform, m_lab, m_n, m_weight, m_out, lab, n, il
+    src, ilabel, olabel, weight, dst = (np.concatenate(c) for c in zip(*parts))
+    del parts
+    weight = weight.astype(np.float32)
+    return _merge_trie_nodes(q, next_id, depth_cuts, a, src, ilabel, olabel, weight, dst,
+                             chains)
+
+
+def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
+                      src: np.ndarray, ilabel: np.ndarray, olabel: np.ndarray,
+                      weight: np.ndarray, dst: np.ndarray, chains: ModelChains
+                      ) -> FstArrays:
+    """Merges trie nodes with equal futures, deepest first (a node's arcs lead one level
+    deeper or to a junction), and returns the arrays grouped by state, sorted by label.
+    Nodes of depth d are the ids ``depth_cuts[d - 1] .. depth_cuts[d] - 1``."""
+    cls = np.arange(total, dtype=np.int64)  # junctions keep their ids
+    wbits = weight_bits(weight)
+    next_cls = q
+    for d in range(len(depth_cuts) - 1, 0, -1):
+        lo, hi = depth_cuts[d - 1], depth_cuts[d]
+        sel = np.flatnonzero((src >= lo) & (src < hi))
+        owner = src[sel] - lo
+        by_owner = np.argsort(owner, kind="stable")
+        sel, owner = sel[by_owner], owner[by_owner]
+        degree = np.bincount(owner, minlength=hi - lo)
+        signatures = []
+        for seed in (21, 22):  # two independent 64-bit signatures per node
+            arc_hash = combine_hash(ilabel[sel], olabel[sel], wbits[sel], cls[dst[sel]],
+                                    seed=seed)
+            signatures.append(combine_hash(sum_by_owner(arc_hash, owner, hi - lo)
+                                           .view(np.int64), degree, seed=seed + 2))
+        c = hash_classes(*signatures)
+        cls[lo:hi] = next_cls + c
+        next_cls += int(c.max(initial=-1)) + 1
+    # The first node of each class keeps its arcs.
+    rep = np.full(next_cls, total, dtype=np.int64)
+    np.minimum.at(rep, cls, np.arange(total))
+    keep = rep[cls[src]] == src
+    new_src = cls[src[keep]]
+    new_il = ilabel[keep]
+    order = np.argsort(new_src << 32 | new_il, kind="stable")
+    finals = np.full(next_cls, np.inf, dtype=np.float32)
+    finals[:q] = a.final_weights
+    return FstArrays(
+        num_states=next_cls, start=a.start, final_weights=finals,
+        src=new_src[order].astype(np.int32), ilabel=new_il[order].astype(np.int32),
+        olabel=olabel[keep][order].astype(np.int32), weight=weight[keep][order],
+        dst=cls[dst[keep]][order].astype(np.int32),
+        isymbols=chains.isymbols, osymbols=a.osymbols, arc_type=a.arc_type)

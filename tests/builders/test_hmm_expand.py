@@ -319,7 +319,9 @@ def _stage(result, name: str) -> dict:
 
 
 @pytest.mark.slow
-def test_ropeway_stage_expands_and_equals_the_composition(tmp_path):
+def test_ropeway_stage_expands_and_equals_the_composition(tmp_path, monkeypatch):
+    # (optimized over arc kinds: the model-level plan skips compose-hmm)
+    monkeypatch.setattr(full_pipeline, "model_level_plan", lambda hfst, opts: None)
     result = build(read_project(DEMO), tmp_path / "out", keep_intermediates=True)
     assert _stage(result, "compose-hmm")["details"]["method"] == "expansion"
     kept = result.full.intermediates
@@ -339,6 +341,7 @@ def _tiny_project(tmp_path: Path) -> Path:
 
 
 def test_composition_path_stays_reachable_and_agrees(tmp_path, monkeypatch):
+    monkeypatch.setattr(full_pipeline, "model_level_plan", lambda hfst, opts: None)
     expanded = build(read_project(_tiny_project(tmp_path)), tmp_path / "a")
     monkeypatch.setattr(full_pipeline, "model_chains", lambda hfst: None)
     composed = build(read_project(_tiny_project(tmp_path)), tmp_path / "b")

@@ -1,0 +1,90 @@
+"""Encoded minimization of an FST held as arrays, by partition refinement in bulk.
+
+- `minimize_arrays(a)`: the arrays of the FST whose states are `a`'s classes of states
+  with the same future, input label, output label and weight of every arc taken as
+  one code (what OpenFst's minimization of the encoded acceptor computes).
+
+Why not OpenFst's minimization: after the graph leaves OpenFst as arrays (the later
+full-graph stages work on arrays), encoding, minimizing and decoding would convert it
+back and forth; and on the model-level graph of the 5k / 200k benchmark set
+(460,652 states, 1,053,501 arcs) the refinement below took 2.3 s in 12 rounds against
+6.0 s for OpenFst's encode + minimize + decode, with the same 446,356 classes.
+
+The refinement (Moore's algorithm, each round in numpy): a state's signature is its
+class, its final weight and the order-free sum of one hash per arc of (input label,
+output label, weight bits, class of the destination); states with equal signatures
+form the next round's classes, until a round adds no class. The first partition puts
+together states with the same final weight and number of arcs. Two independent 64-bit
+signatures are kept per state, so a false merge needs both to collide. States with
+several arcs of one code to one class count each arc (a state with a duplicated arc is
+not merged with its copy without the duplicate): the classes are then finer than
+bisimulation at worst, never coarser, so the result is always equivalent.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .bulk import combine_hash, hash_classes, mix_hash, sum_by_owner, weight_bits
+from .io.fstfile import FstArrays
+
+__all__ = ["minimize_arrays", "state_classes"]
+
+
+def state_classes(a: FstArrays) -> np.ndarray:
+    """Returns the class id of every state of `a` (arcs grouped by state in state
+    order): dense ids, states with the same encoded future share one."""
+    n = a.num_states
+    if n == 0:
+        return np.zeros(0, dtype=np.int64)
+    src = a.src
+    dst = a.dst.astype(np.int64)
+    wbits = weight_bits(a.weight)
+    arc_base = [combine_hash(a.ilabel, a.olabel, wbits, seed=seed) for seed in (31, 32)]
+    del wbits
+    final_bits = weight_bits(a.final_weights)
+    degree = np.bincount(src, minlength=n)
+    cls = hash_classes(combine_hash(final_bits, degree, seed=35),
+                       combine_hash(final_bits, degree, seed=36))
+    count = int(cls.max()) + 1
+    while True:
+        signatures = []
+        for base, seed in zip(arc_base, (31, 32)):
+            arc_hash = mix_hash(base ^ mix_hash(cls[dst].view(np.uint64), seed + 9), seed)
+            total = sum_by_owner(arc_hash, src, n)
+            signatures.append(combine_hash(cls, total.view(np.int64), seed=seed + 4))
+        new = hash_classes(*signatures)
+        new_count = int(new.max()) + 1
+        if new_count == count:
+            return cls
+        cls, count = new, new_count
+
+
+def minimize_arrays(a: FstArrays) -> FstArrays:
+    """Returns the encoded minimization of `a` (arcs grouped by state in state order).
+
+    The first state of each class keeps its arcs; classes are numbered in the order of
+    those states, so the arcs stay grouped by state and in their order within it.
+    """
+    n = a.num_states
+    if n == 0:
+        return a
+    cls = state_classes(a)
+    num = int(cls.max()) + 1
+    rep = np.full(num, n, dtype=np.int64)
+    np.minimum.at(rep, cls, np.arange(n))
+    by_rep = np.argsort(rep, kind="stable")
+    rep = rep[by_rep]
+    renumber = np.empty(num, dtype=np.int64)
+    renumber[by_rep] = np.arange(num)
+    cls = renumber[cls]
+    is_rep = np.zeros(n, dtype=bool)
+    is_rep[rep] = True
+    keep = is_rep[a.src]
+    return FstArrays(
+        num_states=num, start=int(cls[a.start]) if a.start >= 0 else -1,
+        final_weights=a.final_weights[rep].copy(),
+        src=cls[a.src[keep]].astype(np.int32), ilabel=a.ilabel[keep].copy(),
+        olabel=a.olabel[keep].copy(), weight=a.weight[keep].copy(),
+        dst=cls[a.dst[keep]].astype(np.int32),
+        isymbols=a.isymbols, osymbols=a.osymbols, arc_type=a.arc_type)

@@ -1,0 +1,150 @@
+"""The model-level path's expansion (netbuild.builders.hmm_expand: `code_classes`,
+`trie_arrays`) against OpenFst's determinization and minimization over arc kinds.
+
+Reference: OpenFst's Determinize (fst/determinize.h, functional, epsilon taken as a
+label) and the minimization of the encoded acceptor (fst/minimize.h, fst/encode.h),
+applied to the plain substitution of each model arc by its chain (`expand_models`,
+itself checked against OpenFst's composition in test_hmm_expand.py); compared with
+OpenFst's Isomorphic and RandEquivalent. Weights are small integers, which float32
+adds and subtracts exactly, so no rounding separates the two constructions.
+"""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pynini
+from hypothesis import assume, given, settings
+from hypothesis import strategies as st
+from fst_helpers import monophone_map
+
+from netbuild.builders.hmm import build_hmm, make_model_symbols
+from netbuild.builders.hmm_expand import (ModelChains, code_classes, expand_models,
+                                          model_chains, trie_arrays)
+from netbuild.io.context_map import HmmState
+from netbuild.io.fstfile import arrays_to_fst, fst_to_arrays
+from netbuild.refine import minimize_arrays
+from netbuild.symbols import make_symbol_table
+
+PHONES = make_symbol_table("phones", ["a", "b"])
+WORDS = make_symbol_table("words", ["w1", "w2", "w3"])
+STATES = [HmmState(c, p, 1.0 - p) for c in range(3) for p in (0.5, 0.25)]
+
+
+def _chains_of(tuples: list[tuple[int, ...]]) -> ModelChains:
+    """ModelChains with model ids 1.. for the given kind tuples."""
+    length = np.array([0] + [len(t) for t in tuples], dtype=np.int64)
+    offset = np.concatenate([[0], np.cumsum(length)[:-1]]).astype(np.int64)
+    kinds = np.array([k for t in tuples for k in t], dtype=np.int32)
+    hub = np.array([0] + [t[0] for t in tuples], dtype=np.int32)
+    return ModelChains(length, offset, kinds, hub, make_symbol_table("k", ["x"]))
+
+
+@settings(max_examples=200)
+@given(st.lists(st.lists(st.integers(1, 3), min_size=1, max_size=3).map(tuple),
+                min_size=1, max_size=6))
+def test_code_classes_against_brute_force(tuples):
+    got = code_classes(_chains_of(tuples))
+    # reference: the definition of a prefix code, pair by pair (plain Python)
+    proper_prefix = any(len(u) < len(v) and v[:len(u)] == u
+                        for u, v in itertools.permutations(tuples, 2))
+    if proper_prefix:
+        assert got is None
+        return
+    assert got is not None
+    want = [0] + [1 + tuples.index(t) for t in tuples]
+    assert got.tolist() == want
+
+
+def _is_deterministic(fst: pynini.Fst) -> bool:
+    return all(len({a.ilabel for a in fst.arcs(s)}) == fst.num_arcs(s)
+               for s in fst.states())
+
+
+def _encoded_minimum(fst: pynini.Fst) -> pynini.Fst:
+    # reference: OpenFst Minimize of the encoded acceptor (fst/minimize.h)
+    mapper = pynini.EncodeMapper(fst.arc_type(), encode_labels=True, encode_weights=True)
+    enc = pynini.encode(fst, mapper)
+    enc.minimize(allow_nondet=True)
+    return pynini.decode(enc, mapper)
+
+
+@st.composite
+def model_graphs(draw):
+    """Random models (chains of one length or of mixed lengths, a prefix code) and a
+    random connected FST over them, deterministic on its input (epsilon a label)."""
+    uniform = draw(st.booleans())
+    count = draw(st.integers(1, 4))
+    if uniform:
+        size = draw(st.integers(1, 3))
+        lengths = [size] * count
+    else:
+        lengths = draw(st.lists(st.integers(1, 3), min_size=count, max_size=count))
+    cmap = monophone_map({f"m{i}": [(s.emission_class, s.self_loop, s.forward)
+                                    for s in draw(st.lists(st.sampled_from(STATES),
+                                                           min_size=n, max_size=n))]
+                          for i, n in enumerate(lengths)})
+    models = make_model_symbols(cmap, PHONES)
+    hfst, _ = build_hmm(cmap, models)
+    chains = model_chains(hfst)
+    classes = code_classes(chains)
+    assume(classes is not None)
+    labels = sorted({0} | {int(classes[models.find(f"m{i}")]) for i in range(count)})
+    ns = draw(st.integers(1, 6))
+    arcs = []
+    for s in range(ns):
+        for lab in draw(st.lists(st.sampled_from(labels), unique=True, max_size=4)):
+            arcs.append((s, lab, draw(st.integers(0, 3)), float(draw(st.integers(0, 3))),
+                         draw(st.integers(0, ns - 1))))
+    finals = [draw(st.sampled_from([np.inf, 0.0, 1.0])) for _ in range(ns)]
+    cols = [np.array(c) for c in zip(*arcs)] if arcs else [np.zeros(0)] * 5
+    src, il, ol, w, dst = cols
+    fst = arrays_to_fst(ns, 0, np.array(finals, dtype=np.float32), src.astype(np.int32),
+                        il.astype(np.int32), ol.astype(np.int32), w.astype(np.float32),
+                        dst.astype(np.int32), isymbols=models, osymbols=WORDS)
+    fst.connect()
+    assume(fst.num_states() > 0)
+    return fst, chains, uniform
+
+
+@settings(max_examples=200, deadline=None)
+@given(model_graphs())
+def test_trie_is_the_kind_level_minimum(case):
+    graph, chains, uniform = case
+    substituted = expand_models(graph, chains)  # H∘graph, not determinized
+    # reference: OpenFst Determinize then encoded Minimize over arc kinds
+    want = _encoded_minimum(pynini.determinize(substituted, det_type="functional"))
+    got_arrays = trie_arrays(minimize_arrays(fst_to_arrays(graph)), chains)
+    got = arrays_to_fst(got_arrays.num_states, got_arrays.start, got_arrays.final_weights,
+                        got_arrays.src, got_arrays.ilabel, got_arrays.olabel,
+                        got_arrays.weight, got_arrays.dst)
+    assert _is_deterministic(got)
+    # reference: OpenFst RandEquivalent (fst/randequivalent.h)
+    assert pynini.randequivalent(got, substituted, npath=60, seed=2, max_length=30,
+                                 delta=1e-4)
+    if uniform:
+        # reference: OpenFst Isomorphic (fst/isomorphic.h)
+        assert pynini.isomorphic(got, want, delta=1e-6)
+    else:
+        # A trie node can then equal a junction, which only a kind-level pass merges.
+        assert got.num_states() >= want.num_states()
+
+
+def test_trie_shares_prefixes_and_places_weights_and_words_early():
+    # m1 = (1, 2, 3) and m2 = (1, 2, 4): one node after kind 1, one after (1, 2).
+    chains = _chains_of([(1, 2, 3), (1, 2, 4)])
+    # state 0 --m1:w1/2--> 1 and 0 --m2:w1/3--> 1; state 1 final
+    graph = arrays_to_fst(2, 0, np.array([np.inf, 0.0], dtype=np.float32),
+                          np.array([0, 0], dtype=np.int32), np.array([1, 2], dtype=np.int32),
+                          np.array([1, 1], dtype=np.int32),
+                          np.array([2.0, 3.0], dtype=np.float32),
+                          np.array([1, 1], dtype=np.int32))
+    t = trie_arrays(fst_to_arrays(graph), chains)
+    arcs = sorted(zip(t.src.tolist(), t.ilabel.tolist(), t.olabel.tolist(),
+                      t.weight.tolist(), t.dst.tolist()))
+    # The shared arcs carry the word (common to both) and the smaller weight; the
+    # leaves carry what is left: 0 for m1, 1 for m2. (Nodes are numbered after the
+    # graph's states, deepest first: 2 is the node after (1, 2), 3 the one after 1.)
+    assert arcs == [(0, 1, 1, 2.0, 3), (2, 3, 0, 0.0, 1), (2, 4, 0, 1.0, 1),
+                    (3, 2, 0, 0.0, 2)]
