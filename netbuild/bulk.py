@@ -134,7 +134,7 @@ def hash_classes(h1: np.ndarray, h2: np.ndarray) -> np.ndarray:
     """Dense class ids of the (h1, h2) pairs (ids follow the order of h1, then h2)."""
     if len(h1) == 0:
         return np.zeros(0, dtype=np.int64)
-    order = np.argsort(h1, kind="stable")
+    order = np.argsort(h1)  # (ids depend only on the values: no need for a stable sort)
     a, b = h1[order], h2[order]
     step = np.ones(len(a), dtype=bool)
     step[1:] = a[1:] != a[:-1]

@@ -7,8 +7,9 @@
 Why not OpenFst's minimization: after the graph leaves OpenFst as arrays (the later
 full-graph stages work on arrays), encoding, minimizing and decoding would convert it
 back and forth; and on the model-level graph of the 5k / 200k benchmark set
-(460,652 states, 1,053,501 arcs) the refinement below took 2.3 s in 12 rounds against
-6.0 s for OpenFst's encode + minimize + decode, with the same 446,356 classes.
+(460,652 states, 1,053,501 arcs) a plain version of the refinement below took 2.3 s
+in 12 rounds against 6.0 s for OpenFst's encode + minimize + decode, with the same
+446,356 classes.
 
 The refinement (Moore's algorithm, each round in numpy): a state's signature is its
 class, its final weight and the order-free sum of one hash per arc of (input label,
@@ -33,31 +34,62 @@ __all__ = ["minimize_arrays", "state_classes"]
 
 def state_classes(a: FstArrays) -> np.ndarray:
     """Returns the class id of every state of `a` (arcs grouped by state in state
-    order): dense ids, states with the same encoded future share one."""
+    order): dense ids, states with the same encoded future share one.
+
+    A class of one state never splits again, so each round looks only at the states
+    of larger classes and their arcs (on the 20k / 1M model-level graph: 2.18M states
+    in the first round, 0.1M from the tenth on; 6M state visits in all instead of 26M).
+    Rounds use one 64-bit signature (half the work of two); the partition they settle
+    on is then refined with two independent signatures until stable, which splits any
+    class that a collision of the first hash merged.
+    """
     n = a.num_states
     if n == 0:
         return np.zeros(0, dtype=np.int64)
     src = a.src
     dst = a.dst.astype(np.int64)
+    # (input, output) packed into one field: one hash fewer per arc
+    labels = a.ilabel.astype(np.int64) << 32 | a.olabel.astype(np.int64)
     wbits = weight_bits(a.weight)
-    arc_base = [combine_hash(a.ilabel, a.olabel, wbits, seed=seed) for seed in (31, 32)]
-    del wbits
+    first_base = combine_hash(labels, wbits, seed=31)
     final_bits = weight_bits(a.final_weights)
     degree = np.bincount(src, minlength=n)
     cls = hash_classes(combine_hash(final_bits, degree, seed=35),
                        combine_hash(final_bits, degree, seed=36))
-    count = int(cls.max()) + 1
-    while True:
-        signatures = []
-        for base, seed in zip(arc_base, (31, 32)):
-            arc_hash = mix_hash(base ^ mix_hash(cls[dst].view(np.uint64), seed + 9), seed)
-            total = sum_by_owner(arc_hash, src, n)
-            signatures.append(combine_hash(cls, total.view(np.int64), seed=seed + 4))
-        new = hash_classes(*signatures)
-        new_count = int(new.max()) + 1
-        if new_count == count:
-            return cls
-        cls, count = new, new_count
+    next_id = int(cls.max()) + 1  # ids stay distinct, not dense, until the end
+    # Single-hash rounds until stable, then rounds with both signatures until stable
+    # (at least one: the check that the first hash merged nothing apart).
+    for seeds in ((0,), (0, 1)):
+        while True:
+            sizes = np.bincount(cls, minlength=next_id)
+            crowded = sizes > 1
+            active = crowded[cls]
+            states = np.flatnonzero(active)
+            if states.shape[0] == 0:
+                break
+            arcs = np.flatnonzero(active[src])
+            place = np.cumsum(active) - 1  # a state's index among `states`
+            owner = place[src[arcs]]
+            destination = cls[dst[arcs]].view(np.uint64)
+            signatures = []
+            for i in seeds:
+                seed = 31 + i
+                # (the second signature's arc codes only for the arcs it looks at)
+                base = first_base[arcs] if i == 0 else \
+                    combine_hash(labels[arcs], wbits[arcs], seed=seed)
+                arc_hash = mix_hash(base ^ mix_hash(destination, seed + 9), seed)
+                total = sum_by_owner(arc_hash, owner, states.shape[0])
+                signatures.append(combine_hash(cls[states], total.view(np.int64),
+                                               seed=seed + 4))
+            local = hash_classes(signatures[0], signatures[-1])
+            local_count = int(local.max()) + 1
+            if local_count == int(crowded.sum()):
+                break  # no class split
+            cls[states] = next_id + local
+            next_id += local_count
+    present = np.zeros(next_id, dtype=bool)
+    present[cls] = True
+    return (np.cumsum(present) - 1)[cls]  # dense, in the order of the ids
 
 
 def minimize_arrays(a: FstArrays) -> FstArrays:

@@ -340,63 +340,87 @@ def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
     that is neither epsilon nor a model of `chains`.
     """
     q = a.num_states
-    il = a.ilabel.astype(np.int64)
+    il = a.ilabel
     lab = np.where(il < chains.num_labels, il, 0)
-    n = chains.length[lab]
+    n = chains.length[lab].astype(np.int32)
     if not ((il == 0) | (n > 0)).all():
         return None
     model = np.flatnonzero(n > 0)
     plain = np.flatnonzero(n == 0)  # epsilon arcs stay as they are
-    m_lab, m_n = lab[model], n[model]
-    m_weight = a.weight[model].astype(np.float64)
-    m_out = a.olabel[model].astype(np.int64)
-    parent = a.src[model].astype(np.int64)
-    parent_weight = np.zeros(model.shape[0])  # what the path to the parent carries
+    # (int32 and float32 throughout: the 20k / 1M graph has 4.7M model arcs, and the
+    # weights are float32 already; only the differences are taken in float64)
+    m_start = chains.offset[lab[model]].astype(np.int32)  # where the arc's chain starts
+    m_n = n[model]
+    del lab, n
+    m_weight = a.weight[model]
+    m_out = a.olabel[model]
+    parent = a.src[model].astype(np.int32)
+    parent_weight = np.zeros(model.shape[0], dtype=np.float32)  # what the path carries
     parent_uniform = np.zeros(model.shape[0], dtype=bool)  # its word already written
-    parts = [(a.src[plain].astype(np.int64), il[plain], a.olabel[plain].astype(np.int64),
-              a.weight[plain].astype(np.float64), a.dst[plain].astype(np.int64))]
+    parts = [(a.src[plain], il[plain], a.olabel[plain], a.weight[plain], a.dst[plain])]
+    del plain
     depth_cuts = [q]
     next_id = q
     for j in range(int(m_n.max(initial=0))):
-        kind = np.zeros(model.shape[0], dtype=np.int64)
         going = np.flatnonzero(m_n > j)
-        kind[going] = chains.kinds[chains.offset[m_lab[going]] + j]
+        kind = np.zeros(model.shape[0], dtype=np.int32)
+        kind[going] = chains.kinds[m_start[going] + j]
         leaf = going[m_n[going] == j + 1]
         parts.append((parent[leaf], kind[leaf],
                       np.where(parent_uniform[leaf], 0, m_out[leaf]),
-                      m_weight[leaf] - parent_weight[leaf], a.dst[model[leaf]].astype(np.int64)))
+                      _difference(m_weight[leaf], parent_weight[leaf]),
+                      a.dst[model[leaf]]))
         inner = going[m_n[going] > j + 1]
+        del going, leaf
         if inner.shape[0] == 0:
             continue
-        key = parent[inner] << 32 | kind[inner]
+        key = parent[inner].astype(np.int64) << 32 | kind[inner]
+        del kind
         order = np.argsort(key, kind="stable")
         skey = key[order]
+        del key
         starts = np.ones(skey.shape[0], dtype=bool)
         np.not_equal(skey[1:], skey[:-1], out=starts[1:])
         first = np.flatnonzero(starts)
-        node_of = np.empty(inner.shape[0], dtype=np.int64)
-        node_of[order] = np.cumsum(starts) - 1
+        node_of = np.empty(inner.shape[0], dtype=np.int32)
+        node_of[order] = np.cumsum(starts, dtype=np.int32) - 1
         members = inner[order]
+        del order, starts
         lowest = np.minimum.reduceat(m_weight[members], first)
         out_min = np.minimum.reduceat(m_out[members], first)
         uniform = out_min == np.maximum.reduceat(m_out[members], first)
         above_weight = parent_weight[members[first]]
         above_uniform = parent_uniform[members[first]]
         count = first.shape[0]
-        parts.append((skey[first] >> 32, skey[first] & 0xFFFFFFFF,
-                      np.where(uniform & ~above_uniform, out_min, 0),
-                      lowest - above_weight, np.arange(next_id, next_id + count)))
+        node_key = skey[first]
+        del skey, members, first
+        parts.append(((node_key >> 32).astype(np.int32),
+                      (node_key & 0xFFFFFFFF).astype(np.int32),
+                      np.where(uniform & ~above_uniform, out_min, 0).astype(np.int32),
+                      _difference(lowest, above_weight),
+                      np.arange(next_id, next_id + count, dtype=np.int32)))
+        del node_key
         parent[inner] = next_id + node_of
         parent_weight[inner] = lowest[node_of]
         parent_uniform[inner] = (uniform | above_uniform)[node_of]
+        del inner, node_of
         next_id += count
         depth_cuts.append(next_id)
-    del parent, parent_weight, parent_uniform, m_lab, m_n, m_weight, m_out, lab, n, il
-    src, ilabel, olabel, weight, dst = (np.concatenate(c) for c in zip(*parts))
+    del parent, parent_weight, parent_uniform, m_start, m_n, m_weight, m_out, model
+    columns = []
+    for i, dtype in enumerate((np.int32, np.int32, np.int32, np.float32, np.int32)):
+        columns.append(np.concatenate([part[i] for part in parts]).astype(dtype, copy=False))
+        parts = [tuple(None if k == i else x for k, x in enumerate(part)) for part in parts]
     del parts
-    weight = weight.astype(np.float32)
+    src, ilabel, olabel, weight, dst = columns
+    del columns
     return _merge_trie_nodes(q, next_id, depth_cuts, a, src, ilabel, olabel, weight, dst,
                              chains)
+
+
+def _difference(minuend: np.ndarray, subtrahend: np.ndarray) -> np.ndarray:
+    """float32 of the float64 difference of two float32 arrays (one rounding)."""
+    return (minuend.astype(np.float64) - subtrahend).astype(np.float32)
 
 
 def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
@@ -408,6 +432,7 @@ def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
     Nodes of depth d are the ids ``depth_cuts[d - 1] .. depth_cuts[d] - 1``."""
     cls = np.arange(total, dtype=np.int64)  # junctions keep their ids
     wbits = weight_bits(weight)
+    labels = ilabel.astype(np.int64) << 32 | olabel  # one hashed field for both
     next_cls = q
     for d in range(len(depth_cuts) - 1, 0, -1):
         lo, hi = depth_cuts[d - 1], depth_cuts[d]
@@ -418,13 +443,13 @@ def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
         degree = np.bincount(owner, minlength=hi - lo)
         signatures = []
         for seed in (21, 22):  # two independent 64-bit signatures per node
-            arc_hash = combine_hash(ilabel[sel], olabel[sel], wbits[sel], cls[dst[sel]],
-                                    seed=seed)
+            arc_hash = combine_hash(labels[sel], wbits[sel], cls[dst[sel]], seed=seed)
             signatures.append(combine_hash(sum_by_owner(arc_hash, owner, hi - lo)
                                            .view(np.int64), degree, seed=seed + 2))
         c = hash_classes(*signatures)
         cls[lo:hi] = next_cls + c
         next_cls += int(c.max(initial=-1)) + 1
+    del labels, wbits
     # The first node of each class keeps its arcs.
     rep = np.full(next_cls, total, dtype=np.int64)
     np.minimum.at(rep, cls, np.arange(total))
