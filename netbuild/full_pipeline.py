@@ -60,6 +60,7 @@ from . import checks as chk
 from .builders.context import build_context
 from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
                            make_model_symbols)
+from .builders.context_compose import compose_context_arrays
 from .builders.hmm_expand import (ModelChains, code_classes, expand_arrays, expanded_fst,
                                   model_chains, trie_arrays)
 from .errors import EmptyCompositionError, StageError
@@ -113,6 +114,42 @@ def _compose(left: pynini.Fst, right: pynini.Fst, stage: str, what: str) -> pyni
             "check that the context map's phones are the lexicon's phones")
     ofst.arcsort(sort_type="ilabel")
     return ofst
+
+
+def compose_context_stage(cfst: pynini.Fst, lg: pynini.Fst, details: dict,
+                          classes: np.ndarray | None = None) -> pynini.Fst:
+    """Constructively builds C∘LG, trimmed and sorted by input label: directly
+    (`netbuild.builders.context_compose`, ``details["method"] = "product"``) or, when
+    the inputs do not fit that construction, with OpenFst ("composition"). With
+    `classes`, each input label ``m`` becomes ``classes[m]``.
+
+    Raises:
+      EmptyCompositionError: C accepts none of LG's phone sequences.
+    """
+    out = compose_context_arrays(fst_to_arrays(cfst), fst_to_arrays(lg))
+    if out is None:
+        details["method"] = "composition"
+        clg = _compose(cfst, lg, "compose-context", "C∘LG")
+        if classes is not None:
+            clg.relabel_pairs(ipairs=[(m, int(c)) for m, c in enumerate(classes.tolist())
+                                      if c != m])
+            clg.arcsort(sort_type="ilabel")
+        return clg
+    details["method"] = "product"
+    if out.start < 0:
+        raise EmptyCompositionError(
+            "compose-context", "C∘LG has no path: the context map's C accepts none of "
+            "the phone sequences of the word-level graph",
+            "check that the context map's phones are the lexicon's phones")
+    if classes is not None:
+        ilabel = np.where(out.ilabel < classes.shape[0],
+                          classes[np.minimum(out.ilabel, classes.shape[0] - 1)],
+                          out.ilabel).astype(np.int32)
+        order = np.argsort(out.src.astype(np.int64) << 32 | ilabel, kind="stable")
+        out = dataclasses.replace(out, src=out.src[order], ilabel=ilabel[order],
+                                  olabel=out.olabel[order], weight=out.weight[order],
+                                  dst=out.dst[order])
+    return _fst_of(out)
 
 
 def remove_markers_stage(ifst: pynini.Fst, marker_ids: list[int]) -> pynini.Fst:
@@ -227,7 +264,7 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
         return _model_level_pipeline(cfst, plan, kind_table, opts)
 
     def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
-        return _compose(cfst, lg, "compose-context", "C∘LG")
+        return compose_context_stage(cfst, lg, details)
 
     chains = model_chains(hfst)  # None unless H has build_hmm's shape
 
@@ -295,12 +332,9 @@ def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray]
     merged = [(m, int(c)) for m, c in enumerate(classes.tolist()) if c != m]
 
     def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
-        clg = _compose(cfst, lg, "compose-context", "C∘LG")
         details["merged_models"] = len(merged)
-        if merged:  # models with one chain become one label (they are indistinguishable)
-            clg.relabel_pairs(ipairs=merged)
-            clg.arcsort(sort_type="ilabel")
-        return clg
+        # (models with one chain become one label: they are indistinguishable)
+        return compose_context_stage(cfst, lg, details, classes if merged else None)
 
     def determinize(f: FstHandoff, details: dict) -> pynini.Fst:
         return determinize_stage(f, opts, details=details)  # drops f once written
