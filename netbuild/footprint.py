@@ -161,12 +161,25 @@ def footprints(states: int, arcs: int, states_with_arcs: int, *,
     return const, vector
 
 
+# (name, labeled checksum) -> (binary bytes, heap bytes) of tables already measured:
+# every stage of a build carries the same word table, and reading a 20k-word table
+# symbol by symbol in Python took 0.14 s per stage (1.8 s of a 6.3 s sub-build).
+_TABLE_SIZES: dict[tuple[str, str], tuple[int, int]] = {}
+
+
 def _tables(fst: pynini.Fst | pywrapfst.Fst) -> tuple[int, int]:
     total = memory = 0
     for table in (fst.input_symbols(), fst.output_symbols()):
         if table is not None:
-            total += symbol_table_bytes(table)
-            memory += symbol_table_memory(table)
+            key = (table.name(), table.labeled_checksum())
+            sizes = _TABLE_SIZES.get(key)
+            if sizes is None:
+                if len(_TABLE_SIZES) > 64:
+                    _TABLE_SIZES.clear()
+                sizes = _TABLE_SIZES[key] = (symbol_table_bytes(table),
+                                             symbol_table_memory(table))
+            total += sizes[0]
+            memory += sizes[1]
     return total, memory
 
 

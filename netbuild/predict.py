@@ -300,7 +300,10 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
         # The whole word-level graph (the x of the extrapolation) and the sub-builds are
         # independent: they run on both cores when the machine has two.
         jobs = [(inputs, model, opts, windows, f, seed, True) for f in (0.0, *shares)]
-        jobs.append((inputs, model, opts, windows, 1.0, seed, False))
+        # (pushing moves weights only, not states or arcs: the whole word-level graph
+        # is counted unpushed, 1.4 s less at 20k / 1M)
+        jobs.append((inputs, model, dataclasses.replace(opts, push_weights=False), windows,
+                     1.0, seed, False))
         done = _run_all(jobs)
         samples, whole = done[:-1], done[-1]
         word_states, word_arcs = whole.word_states, whole.word_arcs
