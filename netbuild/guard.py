@@ -28,6 +28,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from typing import TYPE_CHECKING
 
 import pynini
 import pywrapfst
@@ -35,6 +36,9 @@ import pywrapfst
 from .errors import DeterminizeError
 from .memory import peak_rss, release_free_memory
 from .symbols import BACKOFF
+
+if TYPE_CHECKING:
+    from .io.fstfile import FstArrays
 
 # Exit codes of the child (besides 0 and signals).
 _EXIT_MEMORY = 3
@@ -49,6 +53,7 @@ class GuardResult:
     fst: pynini.Fst
     peak_rss_bytes: int
     seconds: float
+    arrays: FstArrays | None = None  # `fst` as arrays, read from the child's const file
 
 
 class FstHandoff:
@@ -161,6 +166,9 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
     with tempfile.TemporaryDirectory(prefix="netbuild-det-") as tmp:
         ipath, opath, spath = (os.path.join(tmp, n) for n in ("in.fst", "out.fst",
                                                                "status.json"))
+        isyms, osyms = (None if t is None else t.copy()
+                        for t in (ifst.input_symbols(), ifst.output_symbols()))
+        arc_type = ifst.arc_type()
         ifst.write(ipath)
         if handed:
             # Imported here: the child, which runs this module, never needs numpy.
@@ -171,7 +179,7 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
             del ifst
             release_free_memory()  # so the machine has it while the child runs
         cmd = [sys.executable, "-m", "netbuild.guard", ipath, opath, spath,
-               "--max-memory", str(int(max_memory)), "--det-type", det_type]
+               "--max-memory", str(int(max_memory)), "--det-type", det_type, "--const"]
         started = time.monotonic()
         proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
                                 start_new_session=True)
@@ -197,13 +205,24 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
         stderr = err_bytes.decode(errors="replace")
         status = {}
         if os.path.exists(spath):
-            with open(spath, encoding="utf-8") as fh:
-                status = json.load(fh)
+            try:
+                with open(spath, encoding="utf-8") as fh:
+                    status = json.load(fh)
+            except ValueError:  # a child that died while writing it
+                status = {}
         code = proc.returncode
         if code == 0 and os.path.exists(opath):
-            ofst = pynini.Fst.read(opath)
+            # The child wrote a const file: its arrays are read with numpy and the FST
+            # is built from them, which is cheaper than reading the file as a vector
+            # FST and converting that back to arrays for the checks (20k / 1M: 4.5 s).
+            from .io.fstfile import arrays_to_fst, const_file_arrays
+
+            a = const_file_arrays(opath, isyms, osyms, arc_type)
+            ofst = arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
+                                 a.olabel, a.weight, a.dst, isymbols=isyms,
+                                 osymbols=osyms, arc_type=arc_type)
             return GuardResult(ofst, int(status.get("peak_rss_bytes", 0)),
-                               float(status.get("seconds", elapsed)))
+                               float(status.get("seconds", elapsed)), a)
     if code == _EXIT_MEMORY or "bad_alloc" in stderr or "MemoryError" in stderr:
         raise DeterminizeError(
             stage, f"ran out of its memory limit of {_limit_text(max_memory)} after "
@@ -234,6 +253,7 @@ def _child(argv: list[str] | None = None) -> int:
     parser.add_argument("status")
     parser.add_argument("--max-memory", type=int, required=True)
     parser.add_argument("--det-type", default="functional")
+    parser.add_argument("--const", action="store_true", help="write a const FST")
     args = parser.parse_args(argv)
     resource.setrlimit(resource.RLIMIT_CORE, (0, 0))
     resource.setrlimit(resource.RLIMIT_AS, (args.max_memory, args.max_memory))
@@ -241,6 +261,10 @@ def _child(argv: list[str] | None = None) -> int:
     try:
         ifst = pynini.Fst.read(args.ifile)
         ofst = pynini.determinize(ifst, det_type=args.det_type)
+        del ifst
+        num_states = ofst.num_states()
+        if args.const:
+            ofst = pywrapfst.convert(ofst, "const")
         ofst.write(args.ofile)
     except MemoryError:
         return _EXIT_MEMORY
@@ -250,7 +274,7 @@ def _child(argv: list[str] | None = None) -> int:
     with open(args.status, "w", encoding="utf-8") as fh:
         json.dump({"peak_rss_bytes": peak_rss(),
                    "seconds": time.monotonic() - started,
-                   "states": ofst.num_states()}, fh)
+                   "states": num_states}, fh)
     return 0
 
 

@@ -143,6 +143,8 @@ def determinize_stage(ifst: pynini.Fst | FstHandoff, opts: BuildOptions, *,
     if details is not None:
         details["child_peak_rss_bytes"] = result.peak_rss_bytes
         details["child_seconds"] = result.seconds
+    if result.arrays is not None:
+        share_arrays(result.fst, result.arrays)  # for the checks and the next stage
     return result.fst
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import gc
 import weakref
 
+import numpy as np
 import pynini
 import pytest
 import random
@@ -14,7 +15,7 @@ from fst_helpers import tracked_copy
 
 from netbuild.errors import DeterminizeError
 from netbuild.guard import FstHandoff, determinize_guarded, precheck_determinizable
-from netbuild.io.fstfile import shared_conversions
+from netbuild.io.fstfile import fst_to_arrays, shared_conversions
 from netbuild.pipeline import compose_stage
 
 _MB = 1024 * 1024
@@ -80,6 +81,12 @@ def test_normal_input_matches_in_process_determinize():
     assert result.peak_rss_bytes > 1 * _MB
     assert result.fst.input_symbols() is not None
     assert lg.num_states() == compose_stage(lex.fst, grammar.fst).num_states()  # unchanged
+    # The arrays read from the child's const file are those of the FST built from them
+    # (reference: OpenFst's own const conversion, which fst_to_arrays reads).
+    fresh = fst_to_arrays(result.fst)
+    for field in ("final_weights", "src", "ilabel", "olabel", "weight", "dst"):
+        assert np.array_equal(getattr(result.arrays, field), getattr(fresh, field)), field
+    assert (result.arrays.num_states, result.arrays.start) == (fresh.num_states, fresh.start)
 
 
 def test_precheck_names_unmarked_homophones_at_once():
