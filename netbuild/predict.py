@@ -8,23 +8,17 @@
   whose estimated need (`stage_need`) exceeds the limit; `stage_order(opts)`,
   `full_stage_order(opts, model_level)`: the stage names a build emits.
 
-Method (docs/size.md has the measurements). The final graph grows with the word-level
-graph det(L∘G), and that is cheap to build in full (netbuild.lextree builds it
-directly). So the word-level graph is built for the whole model, and the whole build
-(L∘G to the final graph, checks off) is run on a few sub-models holding every unigram
-and a share f of the higher-order n-grams; each gives one point (x = states or arcs of
-its word-level graph, y = states or arcs of its final graph). The
-sub-model with f = 0 (unigrams only) gives the intercept (x0, y0), and the growth above
-it is fitted in log-log coordinates over the sampled fractions as a power law,
-y - y0 = b (x - x0)^p (least squares). The point estimate is that law at the whole
-word-level graph's x (against the word-level graph the local exponent barely drifts:
-0.91-0.96 on w5k_n200k, so a quadratic in log-log coordinates, tried too, extrapolated
-far worse over the tenfold range); the interval spans the law, the extrapolations of
-every pair of
-sampled points (the local slopes) and, as an upper end, the growth from the largest
-share with an exponent halfway between the fitted one and 1 (on a dense synthetic set
-the growth accelerated toward linear beyond the samples), widened by the largest
-relative residual of the power fit and a fixed 5%.
+Method (docs/size.md has the measurements). The final graph is close to proportional
+to the states of C∘LG, and C∘LG is cheap to build in full (the word-level graph is
+built directly by netbuild.lextree, C∘LG by a product walk). So C∘LG is built for
+the whole model, and the whole build (L∘G to the final graph, checks off) is run on
+two sub-models holding every unigram and a share f, then 2f, of the higher-order
+n-grams. Each sub-build gives the ratios final states / C∘LG states and final arcs /
+C∘LG states; the point estimate is the whole model's C∘LG states times the ratio of
+the larger share, and the interval spans the ratios of both shares, widened by a fixed
+5 %. (The ratio of final to C∘LG states was 2.49-2.54 over shares 0-8 % on
+w5k_n200k and 2.52 for the whole model; power laws fitted against the word-level
+graph, used before, drifted by up to 15 % over the tenfold extrapolation.)
 
 The sub-models are prefix-closed so that no history is lost: an n-gram (n >= 2) is
 kept when a hash of its first two word ids falls below f, so every kept n-gram's
@@ -70,6 +64,7 @@ class Sample:
     seconds: float
     word_states: int = 0
     word_arcs: int = 0
+    context_states: int = 0  # states of its C∘LG (0: not built)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -138,53 +133,38 @@ def subsample_model(model: ArpaModel, fraction: float, seed: int = 0) -> ArpaMod
 
 def _fractions(higher: int) -> tuple[float, ...]:
     f = min(_MAX_FRACTION, max(_MIN_FRACTION, _MIN_SAMPLED_NGRAMS / max(higher, 1)))
-    return (f, 2 * f, 4 * f)
+    return (f, 2 * f)
 
 
-def _fit(xs: np.ndarray, ys: np.ndarray) -> tuple[float, float]:
-    """Least-squares (log b, p) of log y = log b + p log x."""
-    lx, ly = np.log(xs), np.log(ys)
-    p, logb = np.polyfit(lx, ly, 1)
-    return float(logb), float(p)
+def _scale(x_whole: float, xs: list[float], ys: list[float]) -> tuple[float, float, float]:
+    """Returns (point, low, high) of y at `x_whole` for y proportional to x: the ratio
+    of the largest sample (the last) for the point, the smallest and largest ratio of
+    all samples, widened by `_WIDEN`, for the interval."""
+    ratios = [y / x for x, y in zip(xs, ys) if x > 0]
+    if not ratios:
+        return 0.0, 0.0, 0.0
+    point = ratios[-1] * x_whole
+    return (point, min(ratios) * x_whole * (1 - _WIDEN),
+            max(ratios) * x_whole * (1 + _WIDEN))
 
 
-def _extrapolate(x0: float, y0: float, xs: list[float], ys: list[float],
-                 x_full: float) -> tuple[float, float, float]:
-    """Returns (point, low, high) of y at `x_full` from the samples above (x0, y0)."""
-    dx = np.array(xs) - x0
-    dy = np.array(ys) - y0
-    usable = (dx > 0) & (dy > 0)
-    if x_full <= x0 or usable.sum() == 0:
-        return y0, y0, y0
-    dx, dy = dx[usable], dy[usable]
-    target = math.log(x_full - x0)
-    if len(dx) == 1:
-        point = y0 + dy[0] * (x_full - x0) / dx[0]  # linear growth: the only choice
-        return point, point * (1 - 2 * _WIDEN), point * (1 + 2 * _WIDEN)
-    logb, p = _fit(dx, dy)
-    power = y0 + math.exp(logb + p * target)
-    residual = float(np.max(np.abs(np.exp(logb + p * np.log(dx)) / dy - 1.0)))
-    ends = [power]
-    point = power
-    if p < 1.0:
-        # On a dense synthetic set (600 words, 30 000 n-grams) the growth beyond the
-        # largest share accelerated toward linear; halfway there bounds it from above.
-        lift = 0.5 * (p + 1.0)
-        ends.append(y0 + dy[-1] * math.exp(lift * (target - math.log(dx[-1]))))
-    for i in range(len(dx)):
-        for j in range(i + 1, len(dx)):
-            if dx[j] == dx[i]:
-                continue
-            pij = math.log(dy[j] / dy[i]) / math.log(dx[j] / dx[i])
-            ends.append(y0 + dy[j] * math.exp(pij * (target - math.log(dx[j]))))
-    widen = _WIDEN + residual
-    return point, min(ends) * (1 - widen), max(ends) * (1 + widen)
+def _context_states(inputs, lexicon, graph, windows, opts) -> int:
+    """States of C∘LG for the word-level `graph` (the product walk; OpenFst's
+    composition where that does not apply)."""
+    from .full_pipeline import compose_context_stage
+    from .builders.context import build_context
+    from .builders.hmm import make_model_symbols
+
+    models = make_model_symbols(inputs.cmap, lexicon.phone_symbols)
+    cfst = build_context(windows, inputs.cmap, lexicon.phone_symbols, models)
+    return compose_context_stage(cfst, graph.fst, {}).num_states()
 
 
 def _final_graph(inputs, model: ArpaModel, opts, windows, full: bool = True):
     """Builds the graph of `model` (checks off); returns (G arcs, word-level states,
-    word-level arcs, final fst) -- the final fst is the word graph when `full` is off
-    or the project has no context map."""
+    word-level arcs, C∘LG states, final fst) -- the final fst is the word graph when
+    `full` is off or the project has no context map; without `full` but with a map,
+    C∘LG is still built and counted."""
     from .full_pipeline import build_full_graph
 
     grammar = build_grammar(model)
@@ -193,9 +173,16 @@ def _final_graph(inputs, model: ArpaModel, opts, windows, full: bool = True):
     graph = build_word_graph(lexicon, grammar, opts)
     fst = graph.fst
     word = graph.stages[-1]
-    if full and inputs.cmap is not None:
-        fst = build_full_graph(graph, lexicon, inputs.cmap, windows, opts).fst
-    return graph.stages[0].arcs, word.states, word.arcs, fst
+    context_states = 0
+    if inputs.cmap is not None:
+        if full:
+            built = build_full_graph(graph, lexicon, inputs.cmap, windows, opts)
+            fst = built.fst
+            context_states = next(r.states for r in built.stages
+                                  if r.name == "compose-context")
+        else:
+            context_states = _context_states(inputs, lexicon, graph, windows, opts)
+    return graph.stages[0].arcs, word.states, word.arcs, context_states, fst
 
 
 def _sample(job) -> Sample:
@@ -209,9 +196,10 @@ def _sample(job) -> Sample:
         sub = subsample_model(model, f, seed)
     else:
         sub = ArpaModel(list(model.vocab), [model.orders[0]], model.path)
-    g_arcs, w_states, w_arcs, fst = _final_graph(inputs, sub, opts, windows, full)
+    g_arcs, w_states, w_arcs, c_states, fst = _final_graph(inputs, sub, opts, windows, full)
     s, a, s1 = state_counts(fst) if full or inputs.cmap is None else (w_states, w_arcs, 0)
-    return Sample(f, g_arcs, s, a, s1, time.perf_counter() - t0, w_states, w_arcs)
+    return Sample(f, g_arcs, s, a, s1, time.perf_counter() - t0, w_states, w_arcs,
+                  c_states)
 
 
 _JOBS: list = []  # the jobs of `_run_all`, inherited by forked workers
@@ -262,11 +250,11 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
     Reads the inputs (all problems raised at once) and builds the whole word-level
     graph, checks off (cheap since it is built directly; for a project without a
     context map it is the final graph, so the prediction is exact). With a context
-    map it then builds the whole graph, checks off, for the unigram-only model and for
+    map it builds C∘LG of the whole model and the whole graph, checks off, for
     sub-models holding the share `fractions` of the higher-order n-grams (default:
-    three shares f, 2f, 4f with f = 1500 / higher-order n-grams, clipped to
-    0.01 .. 0.15), and extrapolates the final states and arcs against the word-level
-    graph's states and arcs. The last sample is the whole word-level graph.
+    f and 2f with f = 1500 / higher-order n-grams, clipped to 0.01 .. 0.15), and
+    scales the final states and arcs with C∘LG's states (module docstring). The last
+    sample is the whole model's (its word-level graph and C∘LG).
 
     Raises:
       InputError: problems in the inputs.
@@ -297,27 +285,23 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
         higher = sum(len(t) for t in model.orders[1:])
         shares = tuple(fractions) if fractions is not None else _fractions(higher)
         windows = context_windows(inputs)
-        # The whole word-level graph (the x of the extrapolation) and the sub-builds are
+        # C∘LG of the whole model (the x of the scaling) and the sub-builds are
         # independent: they run on both cores when the machine has two.
-        jobs = [(inputs, model, opts, windows, f, seed, True) for f in (0.0, *shares)]
+        jobs = [(inputs, model, opts, windows, f, seed, True) for f in shares]
         # (pushing moves weights only, not states or arcs: the whole word-level graph
-        # is counted unpushed, 1.4 s less at 20k / 1M)
+        # and its C∘LG are counted unpushed, 1.4 s less at 20k / 1M)
         jobs.append((inputs, model, dataclasses.replace(opts, push_weights=False), windows,
                      1.0, seed, False))
         done = _run_all(jobs)
-        samples, whole = done[:-1], done[-1]
-        word_states, word_arcs = whole.word_states, whole.word_arcs
-        # The final graph grows with the word-level graph, which is known exactly:
-        # extrapolate states from its states and arcs from its arcs.
-        base, rest = samples[0], samples[1:]
-        st, st_lo, st_hi = _extrapolate(base.word_states, base.states,
-                                        [float(s.word_states) for s in rest],
-                                        [float(s.states) for s in rest], word_states)
-        ar, ar_lo, ar_hi = _extrapolate(base.word_arcs, base.arcs,
-                                        [float(s.word_arcs) for s in rest],
-                                        [float(s.arcs) for s in rest], word_arcs)
+        rest, whole = done[:-1], done[-1]
+        # The final graph is close to proportional to C∘LG's states (final states per
+        # C∘LG state: 2.49-2.54 over shares 0-8 % on w5k_n200k, 2.52 for the whole
+        # model), where power laws against the word-level graph drifted by 15 %.
+        xs = [float(s.context_states) for s in rest]
+        st, st_lo, st_hi = _scale(whole.context_states, xs, [float(s.states) for s in rest])
+        ar, ar_lo, ar_hi = _scale(whole.context_states, xs, [float(s.arcs) for s in rest])
         last = rest[-1]
-        samples.append(whole)
+        samples = [*rest, whole]
     share = last.states_with_arcs / max(last.states, 1)
 
     def bytes_of(states: float, arcs: float) -> tuple[dict[str, int], dict[str, int]]:

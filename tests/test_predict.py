@@ -13,7 +13,7 @@ from netbuild.cli import cli
 from netbuild.errors import StageError
 from netbuild.inspectors.size import footprints
 from netbuild.io.arpa import read_arpa
-from netbuild.predict import (MemoryGuard, _extrapolate, full_stage_order,
+from netbuild.predict import (MemoryGuard, _scale, full_stage_order,
                               predict_graph_size, stage_need, stage_order, subsample_model)
 from netbuild.project import apply_overrides, read_project
 from netbuild.workflow import build
@@ -39,14 +39,13 @@ def test_subsample_is_prefix_closed_and_near_the_share():
     assert np.array_equal(again.orders[2].words, sub.orders[2].words)  # deterministic
 
 
-def test_extrapolation_recovers_a_power_law():
-    # y - 10 = 3 x^0.9 exactly: the point estimate is the law's value, inside the interval.
-    xs = [100.0, 200.0, 400.0]
-    ys = [10 + 3 * (x - 5) ** 0.9 for x in xs]
-    point, low, high = _extrapolate(5.0, 10.0, xs, ys, 5005.0)
-    truth = 10 + 3 * 5000 ** 0.9  # reference: the generating formula
-    assert point == pytest.approx(truth, rel=1e-9)
-    assert low < truth < high
+def test_scaling_takes_the_largest_sample_and_spans_every_ratio():
+    # y = 2.5 x at the larger sample, 2.4 x at the smaller: the point follows the last
+    # sample's ratio, the interval every ratio widened by 5 %.
+    point, low, high = _scale(1000.0, [10.0, 20.0], [24.0, 50.0])
+    assert point == pytest.approx(2500.0)  # reference: 2.5 * 1000, by hand
+    assert low == pytest.approx(2400.0 * 0.95)
+    assert high == pytest.approx(2500.0 * 1.05)
 
 
 @pytest.mark.slow
