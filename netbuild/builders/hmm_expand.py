@@ -50,7 +50,8 @@ import numpy as np
 import pynini
 import pywrapfst
 
-from ..bulk import combine_hash, hash_classes, sum_by_owner, unique_sorted, weight_bits
+from ..bulk import (combine_hash, hash_classes, stable_order, sum_by_owner, unique_sorted,
+                    weight_bits)
 from ..io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, share_arrays
 from ..symbols import is_auxiliary
 
@@ -438,7 +439,7 @@ def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
         lo, hi = depth_cuts[d - 1], depth_cuts[d]
         sel = np.flatnonzero((src >= lo) & (src < hi))
         owner = src[sel] - lo
-        by_owner = np.argsort(owner, kind="stable")
+        by_owner = stable_order(owner)
         sel, owner = sel[by_owner], owner[by_owner]
         degree = np.bincount(owner, minlength=hi - lo)
         signatures = []
