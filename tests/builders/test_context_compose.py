@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pynini
 import pytest
-from hypothesis import assume, given, settings
+from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from netbuild.builders.context_compose import compose_context_arrays
