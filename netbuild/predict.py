@@ -33,6 +33,7 @@ import time
 from typing import Sequence
 
 import numpy as np
+import pynini
 
 from .builders.grammar import build_grammar
 from .builders.lexicon import build_lexicon
@@ -148,23 +149,27 @@ def _scale(x_whole: float, xs: list[float], ys: list[float]) -> tuple[float, flo
             max(ratios) * x_whole * (1 + _WIDEN))
 
 
-def _context_states(inputs, lexicon, graph, windows, opts) -> int:
-    """States of C∘LG for the word-level `graph` (the product walk; OpenFst's
-    composition where that does not apply)."""
-    from .full_pipeline import compose_context_stage
+def _context_fst(inputs, model: ArpaModel, opts, windows) -> pynini.Fst:
+    """C for the project, the same for every sub-model: its phone table comes from L,
+    which depends on the lexicon and the vocabulary only (every sub-model keeps every
+    unigram), so L is built here for the unigrams alone."""
     from .builders.context import build_context
     from .builders.hmm import make_model_symbols
 
-    models = make_model_symbols(inputs.cmap, lexicon.phone_symbols)
-    cfst = build_context(windows, inputs.cmap, lexicon.phone_symbols, models)
-    return compose_context_stage(cfst, graph.fst, {}).num_states()
+    unigrams = ArpaModel(list(model.vocab), [model.orders[0]], model.path)
+    lexicon = build_lexicon(inputs.lexicon, inputs.inventory,
+                            build_grammar(unigrams).word_symbols, opts.lexicon)
+    phones = lexicon.phone_symbols
+    return build_context(windows, inputs.cmap, phones, make_model_symbols(inputs.cmap,
+                                                                         phones))
 
 
-def _final_graph(inputs, model: ArpaModel, opts, windows, full: bool = True):
+def _final_graph(inputs, model: ArpaModel, opts, windows, full: bool = True,
+                 cfst: pynini.Fst | None = None):
     """Builds the graph of `model` (checks off); returns (G arcs, word-level states,
     word-level arcs, C∘LG states, final fst) -- the final fst is the word graph when
     `full` is off or the project has no context map; without `full` but with a map,
-    C∘LG is still built and counted."""
+    C∘LG is still built and counted. `cfst`: C, from `_context_fst`."""
     from .full_pipeline import build_full_graph
 
     grammar = build_grammar(model)
@@ -176,19 +181,22 @@ def _final_graph(inputs, model: ArpaModel, opts, windows, full: bool = True):
     context_states = 0
     if inputs.cmap is not None:
         if full:
-            built = build_full_graph(graph, lexicon, inputs.cmap, windows, opts)
+            built = build_full_graph(graph, lexicon, inputs.cmap, windows, opts,
+                                     context_fst=cfst)
             fst = built.fst
             context_states = next(r.states for r in built.stages
                                   if r.name == "compose-context")
         else:
-            context_states = _context_states(inputs, lexicon, graph, windows, opts)
+            from .full_pipeline import compose_context_stage
+
+            context_states = compose_context_stage(cfst, graph.fst, {}).num_states()
     return graph.stages[0].arcs, word.states, word.arcs, context_states, fst
 
 
 def _sample(job) -> Sample:
     """One measurement: the graph of the share `f` of the model (1.0: the whole model;
     0.0: its unigrams), full graph or word level only."""
-    inputs, model, opts, windows, f, seed, full = job
+    inputs, model, opts, windows, f, seed, full, cfst = job
     t0 = time.perf_counter()
     if f >= 1.0:
         sub = model
@@ -196,7 +204,8 @@ def _sample(job) -> Sample:
         sub = subsample_model(model, f, seed)
     else:
         sub = ArpaModel(list(model.vocab), [model.orders[0]], model.path)
-    g_arcs, w_states, w_arcs, c_states, fst = _final_graph(inputs, sub, opts, windows, full)
+    g_arcs, w_states, w_arcs, c_states, fst = _final_graph(inputs, sub, opts, windows, full,
+                                                           cfst)
     s, a, s1 = state_counts(fst) if full or inputs.cmap is None else (w_states, w_arcs, 0)
     return Sample(f, g_arcs, s, a, s1, time.perf_counter() - t0, w_states, w_arcs,
                   c_states)
@@ -276,7 +285,7 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
     if inputs.cmap is None:
         # The word-level graph is the final graph, and building it in full is cheap:
         # the "prediction" is the graph itself.
-        whole = _sample((inputs, model, opts, None, 1.0, seed, False))
+        whole = _sample((inputs, model, opts, None, 1.0, seed, False, None))
         samples: list[Sample] = [whole]
         st = st_lo = st_hi = float(whole.states)
         ar = ar_lo = ar_hi = float(whole.arcs)
@@ -287,11 +296,12 @@ def predict_graph_size(project: Project, fractions: Sequence[float] | None = Non
         windows = context_windows(inputs)
         # C∘LG of the whole model (the x of the scaling) and the sub-builds are
         # independent: they run on both cores when the machine has two.
-        jobs = [(inputs, model, opts, windows, f, seed, True) for f in shares]
+        cfst = _context_fst(inputs, model, opts, windows)  # built once, before the fork
+        jobs = [(inputs, model, opts, windows, f, seed, True, cfst) for f in shares]
         # (pushing moves weights only, not states or arcs: the whole word-level graph
         # and its C∘LG are counted unpushed, 1.4 s less at 20k / 1M)
         jobs.append((inputs, model, dataclasses.replace(opts, push_weights=False), windows,
-                     1.0, seed, False))
+                     1.0, seed, False, cfst))
         done = _run_all(jobs)
         rest, whole = done[:-1], done[-1]
         # The final graph is close to proportional to C∘LG's states (final states per
