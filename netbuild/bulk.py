@@ -6,6 +6,7 @@
 - `reachable(num_nodes, src, dst, seeds)`: the nodes reachable from `seeds`, breadth
   first, in bulk.
 - `stable_order(keys)`: a stable argsort of small non-negative integer keys, faster.
+- `distinct_inverse(keys)`: the sorted distinct keys and each key's index among them.
 - State signatures for bulk minimization: `mix_hash(x, seed)` (splitmix64),
   `combine_hash(*fields, seed)` (one 64-bit hash per row of fields), `weight_bits(w)`
   (float32 weights as comparable integers), `sum_by_owner(values, owner, n)` (an
@@ -89,6 +90,20 @@ def stable_order(keys: np.ndarray) -> np.ndarray:
     packed.sort()
     packed &= 0xFFFFFFFF
     return packed
+
+
+def distinct_inverse(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Returns the sorted distinct values of the 1-D integer array `keys` and, for each
+    key, the index of its value among them: ``np.unique(keys, return_inverse=True)``
+    by sorting (numpy's own takes a much slower hashing path here, as in
+    `unique_sorted`)."""
+    order = np.argsort(keys, kind="stable")
+    ordered = keys[order]
+    starts = np.ones(ordered.shape[0], dtype=bool)
+    np.not_equal(ordered[1:], ordered[:-1], out=starts[1:])
+    inverse = np.empty(keys.shape[0], dtype=np.int64)
+    inverse[order] = np.cumsum(starts) - 1
+    return ordered[starts], inverse
 
 
 def reachable(num_nodes: int, src: np.ndarray, dst: np.ndarray, seeds: np.ndarray) -> np.ndarray:

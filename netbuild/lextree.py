@@ -64,6 +64,7 @@ from .builders.grammar import GrammarResult
 from .builders.lexicon import LexiconResult, Pronunciations
 from .errors import EmptyCompositionError
 from .io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
+from .refine import quotient
 from .symbols import BACKOFF
 
 __all__ = ["TreeInputs", "TreeGraph", "tree_inputs", "build_tree_graph",
@@ -638,23 +639,7 @@ def minimize_tree_graph(tree: TreeGraph) -> tuple[FstArrays, np.ndarray | None]:
         c = hash_classes(*signatures)
         cls[nodes] = next_cls + c
         next_cls += int(c.max()) + 1
-    # One representative (the first state) per class keeps its arcs. Classes are
-    # renumbered in the order of their representatives, so the kept arcs stay sorted
-    # by state and input label as they were.
-    num = next_cls
-    rep = np.full(num, a.num_states, dtype=np.int64)
-    np.minimum.at(rep, cls, np.arange(a.num_states))
-    by_rep = np.argsort(rep)
-    rep = rep[by_rep]
-    renumber = np.empty(num, dtype=np.int64)
-    renumber[by_rep] = np.arange(num)
-    cls = renumber[cls]
-    is_rep = np.zeros(a.num_states, dtype=bool)
-    is_rep[rep] = True
-    keep = is_rep[src]
-    arcs = FstArrays(num, int(cls[a.start]), a.final_weights[rep],
-                     cls[src[keep]].astype(np.int32), a.ilabel[keep], a.olabel[keep],
-                     a.weight[keep], cls[dst[keep]].astype(np.int32))
+    arcs, rep = quotient(a, cls)
     return arcs, None if tree.potentials is None else tree.potentials[rep]
 
 

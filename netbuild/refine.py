@@ -3,6 +3,8 @@
 - `minimize_arrays(a)`: the arrays of the FST whose states are `a`'s classes of states
   with the same future, input label, output label and weight of every arc taken as
   one code (what OpenFst's minimization of the encoded acceptor computes).
+- `state_classes(a)`: those classes; `quotient(a, cls)`: the FST of any such classes
+  (also used by the word-level minimization in `netbuild.lextree`).
 
 Why not OpenFst's minimization: after the graph leaves OpenFst as arrays (the later
 full-graph stages work on arrays), encoding, minimizing and decoding would convert it
@@ -29,7 +31,7 @@ import numpy as np
 from .bulk import combine_hash, hash_classes, mix_hash, sum_by_owner, weight_bits
 from .io.fstfile import FstArrays
 
-__all__ = ["minimize_arrays", "state_classes"]
+__all__ = ["minimize_arrays", "quotient", "state_classes"]
 
 
 def state_classes(a: FstArrays) -> np.ndarray:
@@ -93,15 +95,22 @@ def state_classes(a: FstArrays) -> np.ndarray:
 
 
 def minimize_arrays(a: FstArrays) -> FstArrays:
-    """Returns the encoded minimization of `a` (arcs grouped by state in state order).
+    """Returns the encoded minimization of `a` (arcs grouped by state in state order):
+    `quotient` by `state_classes`."""
+    if a.num_states == 0:
+        return a
+    return quotient(a, state_classes(a))[0]
+
+
+def quotient(a: FstArrays, cls: np.ndarray) -> tuple[FstArrays, np.ndarray]:
+    """Returns `a` with each class of states `cls` (dense ids, states of one class
+    having the same encoded future) made one state, and each new state's
+    representative in `a`.
 
     The first state of each class keeps its arcs; classes are numbered in the order of
     those states, so the arcs stay grouped by state and in their order within it.
     """
     n = a.num_states
-    if n == 0:
-        return a
-    cls = state_classes(a)
     num = int(cls.max()) + 1
     rep = np.full(num, n, dtype=np.int64)
     np.minimum.at(rep, cls, np.arange(n))
@@ -119,4 +128,4 @@ def minimize_arrays(a: FstArrays) -> FstArrays:
         src=cls[a.src[keep]].astype(np.int32), ilabel=a.ilabel[keep].copy(),
         olabel=a.olabel[keep].copy(), weight=a.weight[keep].copy(),
         dst=cls[a.dst[keep]].astype(np.int32),
-        isymbols=a.isymbols, osymbols=a.osymbols, arc_type=a.arc_type)
+        isymbols=a.isymbols, osymbols=a.osymbols, arc_type=a.arc_type), rep

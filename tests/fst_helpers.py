@@ -5,6 +5,7 @@ from __future__ import annotations
 import pynini
 
 from netbuild.io.context_map import ContextMap, HmmState, Model
+from netbuild.io.fstfile import FstArrays, arrays_to_fst
 
 
 class Tracked(pynini.Fst):
@@ -24,6 +25,21 @@ def tracked_copy(fst: pynini.Fst) -> Tracked:
     out.set_input_symbols(fst.input_symbols())
     out.set_output_symbols(fst.output_symbols())
     return out
+
+
+def fst_of_arrays(a: FstArrays) -> pynini.Fst:
+    """The FST of `a` (without symbol tables)."""
+    return arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
+                         a.olabel, a.weight, a.dst)
+
+
+def openfst_encoded_minimum(fst: pynini.Fst) -> pynini.Fst:
+    """OpenFst's minimization of `fst` as an acceptor of (input, output, weight) codes."""
+    # reference: OpenFst Minimize of the encoded acceptor (fst/minimize.h, fst/encode.h)
+    mapper = pynini.EncodeMapper(fst.arc_type(), encode_labels=True, encode_weights=True)
+    enc = pynini.encode(fst, mapper)
+    enc.minimize(allow_nondet=True)
+    return pynini.decode(enc, mapper)
 
 
 def monophone_map(models: dict[str, list[tuple[int, float, float]]]) -> ContextMap:

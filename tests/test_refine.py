@@ -13,21 +13,10 @@ import pynini
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from fst_helpers import fst_of_arrays, openfst_encoded_minimum
+
 from netbuild.io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
 from netbuild.refine import minimize_arrays
-
-
-def _fst(a: FstArrays) -> pynini.Fst:
-    return arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
-                         a.olabel, a.weight, a.dst)
-
-
-def _openfst_minimum(fst: pynini.Fst) -> pynini.Fst:
-    # reference: OpenFst Minimize of the encoded acceptor (fst/minimize.h)
-    mapper = pynini.EncodeMapper(fst.arc_type(), encode_labels=True, encode_weights=True)
-    enc = pynini.encode(fst, mapper)
-    enc.minimize(allow_nondet=True)
-    return pynini.decode(enc, mapper)
 
 
 @st.composite
@@ -55,8 +44,8 @@ def graphs(draw):
 @given(graphs())
 def test_refinement_matches_openfst(case):
     fst, deterministic = case
-    got = _fst(minimize_arrays(fst_to_arrays(fst)))
-    want = _openfst_minimum(fst)
+    got = fst_of_arrays(minimize_arrays(fst_to_arrays(fst)))
+    want = openfst_encoded_minimum(fst)
     if fst.num_states() == 0:
         assert got.num_states() == 0
         return

@@ -34,7 +34,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..bulk import reachable
+from ..bulk import distinct_inverse, reachable
 from ..io.fstfile import FstArrays
 
 __all__ = ["compose_context_arrays"]
@@ -79,22 +79,11 @@ class _PairIndex:
             return
         self.runs.append((keys, ids))
         while len(self.runs) > 1 and 2 * self.runs[-1][0].shape[0] >= self.runs[-2][0].shape[0]:
-            (k1, i1), (k2, i2) = self.runs.pop(), self.runs.pop()
-            k, i = np.concatenate([k2, k1]), np.concatenate([i2, i1])
-            order = np.argsort(k, kind="stable")
-            self.runs.append((k[order], i[order]))
-
-
-def _distinct(key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Sorted distinct keys and each key's index among them (by sorting: numpy's
-    ``unique(..., return_inverse=True)`` takes a much slower hashing path here)."""
-    order = np.argsort(key, kind="stable")
-    skey = key[order]
-    starts = np.ones(skey.shape[0], dtype=bool)
-    np.not_equal(skey[1:], skey[:-1], out=starts[1:])
-    inverse = np.empty(key.shape[0], dtype=np.int64)
-    inverse[order] = np.cumsum(starts) - 1
-    return skey[starts], inverse
+            (newer_keys, newer_ids), (older_keys, older_ids) = self.runs.pop(), self.runs.pop()
+            keys = np.concatenate([older_keys, newer_keys])
+            ids = np.concatenate([older_ids, newer_ids])
+            order = np.argsort(keys, kind="stable")
+            self.runs.append((keys[order], ids[order]))
 
 
 def compose_context_arrays(c: FstArrays, lg: FstArrays) -> FstArrays | None:
@@ -154,7 +143,7 @@ def compose_context_arrays(c: FstArrays, lg: FstArrays) -> FstArrays | None:
         key = dq.astype(np.int64) * nc + dc
         dst = known.find(key)
         missing = np.flatnonzero(dst < 0)
-        new_keys, inverse = _distinct(key[missing])
+        new_keys, inverse = distinct_inverse(key[missing])
         count = new_keys.shape[0]
         new_q = (new_keys // nc).astype(np.int32)
         new_c = (new_keys % nc).astype(np.int32)

@@ -50,8 +50,8 @@ import numpy as np
 import pynini
 import pywrapfst
 
-from ..bulk import (combine_hash, hash_classes, stable_order, sum_by_owner, unique_sorted,
-                    weight_bits)
+from ..bulk import (combine_hash, distinct_inverse, hash_classes, stable_order, sum_by_owner,
+                    unique_sorted, weight_bits)
 from ..io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, share_arrays
 from ..symbols import is_auxiliary
 
@@ -205,15 +205,7 @@ def expand_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
 
     # One chain per distinct (model, destination) among the arcs of models of 2+ states.
     long = np.flatnonzero(n >= 2)
-    key = lab[long] << 32 | a.dst[long].astype(np.int64)
-    order = np.argsort(key, kind="stable")
-    skey = key[order]
-    starts = np.ones(skey.shape[0], dtype=bool)
-    np.not_equal(skey[1:], skey[:-1], out=starts[1:])
-    pair_of = np.empty(skey.shape[0], dtype=np.int64)
-    pair_of[order] = np.cumsum(starts) - 1
-    pair_key = skey[starts]
-    del key, order, skey, starts
+    pair_key, pair_of = distinct_inverse(lab[long] << 32 | a.dst[long].astype(np.int64))
     pair_model = pair_key >> 32
     pair_dst = pair_key & 0xFFFFFFFF
     inner = chains.length[pair_model] - 1  # chain states (and chain arcs) of each pair

@@ -16,19 +16,16 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from fst_helpers import fst_of_arrays
+
 from netbuild.builders.context_compose import compose_context_arrays
-from netbuild.io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
+from netbuild.io.fstfile import FstArrays, fst_to_arrays
 from netbuild.project import read_project
 from netbuild.workflow import build
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "examples" / "ropeway" / "project.toml"
 DATA = ROOT / "tests" / "data" / "full"
-
-
-def _fst(a: FstArrays) -> pynini.Fst:
-    return arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
-                         a.olabel, a.weight, a.dst)
 
 
 def _with_arc_ids(lg: FstArrays) -> FstArrays:
@@ -41,12 +38,12 @@ def assert_same_as_composition(c: FstArrays, lg: FstArrays) -> None:
     got = compose_context_arrays(c, lg)
     assert got is not None
     # reference: OpenFst compose with connect (fst/compose.h)
-    want = pynini.compose(pynini.arcsort(_fst(c), sort_type="olabel"), _fst(lg),
+    want = pynini.compose(pynini.arcsort(fst_of_arrays(c), sort_type="olabel"), fst_of_arrays(lg),
                           connect=True)
     if want.num_states() == 0:
         assert got.start < 0
         return
-    mine = _fst(got)
+    mine = fst_of_arrays(got)
     assert (mine.num_states(), got.num_arcs) == \
         (want.num_states(), sum(want.num_arcs(s) for s in want.states()))
     # reference: OpenFst Isomorphic (fst/isomorphic.h)

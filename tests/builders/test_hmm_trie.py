@@ -17,7 +17,7 @@ import numpy as np
 import pynini
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
-from fst_helpers import monophone_map
+from fst_helpers import fst_of_arrays, monophone_map, openfst_encoded_minimum
 
 from netbuild.builders.hmm import build_hmm, make_model_symbols
 from netbuild.builders.hmm_expand import (ModelChains, code_classes, expand_models,
@@ -60,14 +60,6 @@ def test_code_classes_against_brute_force(tuples):
 def _is_deterministic(fst: pynini.Fst) -> bool:
     return all(len({a.ilabel for a in fst.arcs(s)}) == fst.num_arcs(s)
                for s in fst.states())
-
-
-def _encoded_minimum(fst: pynini.Fst) -> pynini.Fst:
-    # reference: OpenFst Minimize of the encoded acceptor (fst/minimize.h)
-    mapper = pynini.EncodeMapper(fst.arc_type(), encode_labels=True, encode_weights=True)
-    enc = pynini.encode(fst, mapper)
-    enc.minimize(allow_nondet=True)
-    return pynini.decode(enc, mapper)
 
 
 @st.composite
@@ -114,11 +106,9 @@ def test_trie_is_the_kind_level_minimum(case):
     graph, chains, uniform = case
     substituted = expand_models(graph, chains)  # H∘graph, not determinized
     # reference: OpenFst Determinize then encoded Minimize over arc kinds
-    want = _encoded_minimum(pynini.determinize(substituted, det_type="functional"))
+    want = openfst_encoded_minimum(pynini.determinize(substituted, det_type="functional"))
     got_arrays = trie_arrays(minimize_arrays(fst_to_arrays(graph)), chains)
-    got = arrays_to_fst(got_arrays.num_states, got_arrays.start, got_arrays.final_weights,
-                        got_arrays.src, got_arrays.ilabel, got_arrays.olabel,
-                        got_arrays.weight, got_arrays.dst)
+    got = fst_of_arrays(got_arrays)
     assert _is_deterministic(got)
     # reference: OpenFst RandEquivalent (fst/randequivalent.h)
     assert pynini.randequivalent(got, substituted, npath=60, seed=2, max_length=30,
