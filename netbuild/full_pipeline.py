@@ -130,12 +130,16 @@ def _compose(left: pynini.Fst, right: pynini.Fst, stage: str, what: str) -> pyni
         raise StageError(stage, f"OpenFst could not compose {what} ({err})",
                          "this is a netbuild bug: the symbol tables do not match") from err
     if ofst.start() == pynini.NO_STATE_ID or ofst.num_states() == 0:
-        raise EmptyCompositionError(
-            stage, f"{what} has no path: the context map's C accepts none of the phone "
-            "sequences of the word-level graph",
-            "check that the context map's phones are the lexicon's phones")
+        raise _no_path(stage, what)
     ofst.arcsort(sort_type="ilabel")
     return ofst
+
+
+def _no_path(stage: str, what: str) -> EmptyCompositionError:
+    return EmptyCompositionError(
+        stage, f"{what} has no path: the context map's C accepts none of the phone "
+        "sequences of the word-level graph",
+        "check that the context map's phones are the lexicon's phones")
 
 
 def compose_context_stage(cfst: pynini.Fst, lg: pynini.Fst, details: dict,
@@ -159,14 +163,11 @@ def compose_context_stage(cfst: pynini.Fst, lg: pynini.Fst, details: dict,
         return clg
     details["method"] = "product"
     if out.start < 0:
-        raise EmptyCompositionError(
-            "compose-context", "C∘LG has no path: the context map's C accepts none of "
-            "the phone sequences of the word-level graph",
-            "check that the context map's phones are the lexicon's phones")
+        raise _no_path("compose-context", "C∘LG")
     if classes is not None:
-        ilabel = np.where(out.ilabel < classes.shape[0],
-                          classes[np.minimum(out.ilabel, classes.shape[0] - 1)],
-                          out.ilabel).astype(np.int32)
+        ilabel = out.ilabel.copy()
+        inside = ilabel < classes.shape[0]  # (labels past H's table are markers)
+        ilabel[inside] = classes[ilabel[inside]]
         order = np.argsort(out.src.astype(np.int64) << 32 | ilabel, kind="stable")
         out = dataclasses.replace(out, src=out.src[order], ilabel=ilabel[order],
                                   olabel=out.olabel[order], weight=out.weight[order],

@@ -191,3 +191,24 @@ def test_minimize_hmm_drops_a_handed_over_input_once_encoded(tmp_path, monkeypat
     # reference: OpenFst RandEquivalent (tropical) against the input
     assert pynini.randequivalent(out, unmarked, npath=300, seed=3, max_length=40,
                                  delta=1e-3)
+
+
+def test_models_with_one_chain_become_one_label_at_the_model_level(tmp_path, monkeypatch):
+    """Two models with the same states (o_other given o_last's) are merged before the
+    model-level determinization; the graph is the one the kind-level path builds."""
+    from netbuild import full_pipeline
+
+    text = (DATA / "triphone.ctx").read_text(encoding="utf-8").replace(
+        "model o_other 1:0.65:0.35 2:0.7:0.3", "model o_other 1:0.6:0.4 2:0.75:0.25")
+    ctx = tmp_path / "twins.ctx"
+    ctx.write_text(text, encoding="utf-8")
+    project = dataclasses.replace(_project(), context=ctx)
+    merged = build(project, tmp_path / "model")
+    stage = next(s for s in merged.manifest["stages"] if s["name"] == "compose-context")
+    assert stage["details"]["merged_models"] == 1
+    monkeypatch.setattr(full_pipeline, "model_level_plan", lambda hfst, opts: None)
+    kinds = build(project, tmp_path / "kinds")
+    assert "determinize-hmm" in [s["name"] for s in kinds.manifest["stages"]]
+    # reference: OpenFst RandEquivalent (fst/randequivalent.h) on the two final graphs
+    assert pynini.randequivalent(merged.full.fst, kinds.full.fst, npath=300, seed=7,
+                                 max_length=60, delta=1e-3)

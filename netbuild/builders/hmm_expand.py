@@ -350,7 +350,9 @@ def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
     parent = a.src[model].astype(np.int32)
     parent_weight = np.zeros(model.shape[0], dtype=np.float32)  # what the path carries
     parent_uniform = np.zeros(model.shape[0], dtype=bool)  # its word already written
-    parts = [(a.src[plain], il[plain], a.olabel[plain], a.weight[plain], a.dst[plain])]
+    # The arcs, collected column by column: source, input, output, weight, destination.
+    parts: list[list[np.ndarray]] = [[a.src[plain]], [il[plain]], [a.olabel[plain]],
+                                     [a.weight[plain]], [a.dst[plain]]]
     del plain
     depth_cuts = [q]
     next_id = q
@@ -359,10 +361,9 @@ def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
         kind = np.zeros(model.shape[0], dtype=np.int32)
         kind[going] = chains.kinds[m_start[going] + j]
         leaf = going[m_n[going] == j + 1]
-        parts.append((parent[leaf], kind[leaf],
-                      np.where(parent_uniform[leaf], 0, m_out[leaf]),
-                      _difference(m_weight[leaf], parent_weight[leaf]),
-                      a.dst[model[leaf]]))
+        _append(parts, parent[leaf], kind[leaf],
+                np.where(parent_uniform[leaf], 0, m_out[leaf]),
+                _difference(m_weight[leaf], parent_weight[leaf]), a.dst[model[leaf]])
         inner = going[m_n[going] > j + 1]
         del going, leaf
         if inner.shape[0] == 0:
@@ -387,11 +388,11 @@ def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
         count = first.shape[0]
         node_key = skey[first]
         del skey, members, first
-        parts.append(((node_key >> 32).astype(np.int32),
-                      (node_key & 0xFFFFFFFF).astype(np.int32),
-                      np.where(uniform & ~above_uniform, out_min, 0).astype(np.int32),
-                      _difference(lowest, above_weight),
-                      np.arange(next_id, next_id + count, dtype=np.int32)))
+        _append(parts, (node_key >> 32).astype(np.int32),
+                (node_key & 0xFFFFFFFF).astype(np.int32),
+                np.where(uniform & ~above_uniform, out_min, 0).astype(np.int32),
+                _difference(lowest, above_weight),
+                np.arange(next_id, next_id + count, dtype=np.int32))
         del node_key
         parent[inner] = next_id + node_of
         parent_weight[inner] = lowest[node_of]
@@ -402,13 +403,18 @@ def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
     del parent, parent_weight, parent_uniform, m_start, m_n, m_weight, m_out, model
     columns = []
     for i, dtype in enumerate((np.int32, np.int32, np.int32, np.float32, np.int32)):
-        columns.append(np.concatenate([part[i] for part in parts]).astype(dtype, copy=False))
-        parts = [tuple(None if k == i else x for k, x in enumerate(part)) for part in parts]
+        columns.append(np.concatenate(parts[i]).astype(dtype, copy=False))
+        parts[i] = []  # (each column's pieces go as soon as it is joined)
     del parts
     src, ilabel, olabel, weight, dst = columns
     del columns
     return _merge_trie_nodes(q, next_id, depth_cuts, a, src, ilabel, olabel, weight, dst,
                              chains)
+
+
+def _append(parts: list[list[np.ndarray]], *columns: np.ndarray) -> None:
+    for part, column in zip(parts, columns):
+        part.append(column)
 
 
 def _difference(minuend: np.ndarray, subtrahend: np.ndarray) -> np.ndarray:
