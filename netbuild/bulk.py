@@ -5,7 +5,7 @@
   iteration diverges.
 - `reachable(num_nodes, src, dst, seeds)`: the nodes reachable from `seeds`, breadth
   first, in bulk.
-- `stable_order(keys)`: a stable argsort of small non-negative integer keys, faster.
+- `stable_order(keys)`: a stable argsort of non-negative integer keys, faster.
 - `distinct_inverse(keys)`: the sorted distinct keys and each key's index among them.
 - State signatures for bulk minimization: `mix_hash(x, seed)` (splitmix64),
   `combine_hash(*fields, seed)` (one 64-bit hash per row of fields), `weight_bits(w)`
@@ -79,16 +79,20 @@ def _is_sorted(a: np.ndarray) -> bool:
 
 
 def stable_order(keys: np.ndarray) -> np.ndarray:
-    """Returns ``np.argsort(keys, kind="stable")`` for non-negative integer keys below
-    2**31, by sorting (key << 32 | position) as int64 values: for 16M int32 keys 1.0 s
-    against 3.7 s (numpy sorts int32 keys stably with timsort, not radix sort)."""
+    """Returns ``np.argsort(keys, kind="stable")`` for non-negative integer keys, by
+    sorting (key << b | position) as int64 values, b the bits of the largest position,
+    when that fits in 63 bits (else numpy's stable argsort): for 16M int32 keys 1.0 s
+    against 3.7 s (numpy sorts int32 keys stably with timsort, not radix sort), and one
+    int64 array instead of the argsort's index and scratch."""
     n = keys.shape[0]
-    if n >= 2**32:
+    shift = max(int(n - 1).bit_length(), 1)
+    top = int(keys.max()) if n else 0
+    if n == 0 or top.bit_length() + shift > 63:
         return np.argsort(keys, kind="stable")
-    packed = keys.astype(np.int64) << 32
+    packed = keys.astype(np.int64) << shift
     packed |= np.arange(n, dtype=np.int64)
     packed.sort()
-    packed &= 0xFFFFFFFF
+    packed &= (1 << shift) - 1
     return packed
 
 

@@ -63,7 +63,14 @@ when it returns, before its output is measured and checked; the determinization 
 once the child has its copy, minimize-hmm once its encoded copy is made, and self-loops
 once its arrays are read (its result's arrays are then its checks' shared conversion).
 Unless `keep_intermediates` is asked for, at most a stage's input and output (with their
-array conversions) are alive at a time, besides C, H, G, L and the word-level graph.
+array conversions) are alive at a time, besides C and H. At the model level every stage's
+result from compose-context on is an `netbuild.io.fstfile.ArrayFst` (its arrays only:
+about 24 bytes per state and 20 per arc, against about 100 and 16 as a vector FST), the
+determinization child reads and writes files made from and read into arrays, and the
+final graph is written from its arrays; no vector FST of the graph is built in this
+process. Handed the word-level graph (``word_fst``), the run frees it once C∘LG is
+built. 20k / 1M: build peak 1,937 → 1,290 MiB, 1,324 MiB with the child's
+(docs/performance.md).
 """
 
 from __future__ import annotations
@@ -80,14 +87,15 @@ import pywrapfst
 from . import checks as chk
 from .builders.context import build_context
 from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbols,
-                           make_model_symbols)
+                           make_model_symbols, self_loop_arrays)
 from .builders.context_compose import compose_context_arrays
 from .builders.hmm_expand import (ModelChains, code_classes, expand_arrays, expanded_fst,
                                   model_chains, trie_arrays)
 from .errors import EmptyCompositionError, StageError
 from .guard import FstHandoff
 from .io.context_map import ContextMap
-from .io.fstfile import FstArrays, arrays_to_fst, forget_shared, fst_to_arrays, share_arrays
+from .io.fstfile import (ArrayFst, FstArrays, arrays_to_fst, as_fst, forget_shared,
+                         fst_to_arrays, share_arrays)
 from .memory import release_free_memory
 from .options import BuildOptions
 from .pipeline import (Pipeline, StageRecord, Step, WordGraph, _input_record,
@@ -108,17 +116,29 @@ MODEL_LEVEL_STAGES = ("determinize-models", "remove-markers", "minimize-models")
 class FullGraph:
     """The full graph and what went into it.
 
-    `intermediates` holds "context" (C), "hmm" (H) and "graph"; built with
-    `keep_intermediates` also every stage's result ("clg", "hclg_raw",
+    `graph` is the final graph as the pipeline left it: at the model level an
+    `ArrayFst`, which `netbuild.io.fstfile.write_fst` writes straight from its arrays;
+    `fst` is it as a `pynini.Fst`, built on first use (20k / 1M: about 0.7 GB and 3 s,
+    which a build that only writes the graph never pays). `intermediates` holds
+    "context" (C) and "hmm" (H); built with `keep_intermediates` also "graph" (`fst`)
+    and every stage's result as a `pynini.Fst` (model level: "clg", "determinized_models", "unmarked",
+    "minimized_models", "expanded"; kind level: "clg", "hclg_raw",
     "determinized_full", "unmarked", "minimized_full").
     """
 
-    fst: pynini.Fst
+    graph: pynini.Fst | ArrayFst
     stages: list[StageRecord]
     intermediates: dict[str, pynini.Fst]
     kind_table: KindTable
     model_symbols: pynini.SymbolTable
     input_symbols: pynini.SymbolTable  # the emission-class table of the final graph
+    _fst: pynini.Fst | None = dataclasses.field(default=None, repr=False)
+
+    @property
+    def fst(self) -> pynini.Fst:
+        if self._fst is None:
+            self._fst = as_fst(self.graph)
+        return self._fst
 
 
 def _compose(left: pynini.Fst, right: pynini.Fst, stage: str, what: str) -> pynini.Fst:
@@ -143,11 +163,13 @@ def _no_path(stage: str, what: str) -> EmptyCompositionError:
 
 
 def compose_context_stage(cfst: pynini.Fst, lg: pynini.Fst, details: dict,
-                          classes: np.ndarray | None = None) -> pynini.Fst:
+                          classes: np.ndarray | None = None, as_arrays: bool = False
+                          ) -> pynini.Fst | ArrayFst:
     """Constructively builds C∘LG, trimmed and sorted by input label: directly
     (`netbuild.builders.context_compose`, ``details["method"] = "product"``) or, when
     the inputs do not fit that construction, with OpenFst ("composition"). With
-    `classes`, each input label ``m`` becomes ``classes[m]``.
+    `classes`, each input label ``m`` becomes ``classes[m]``. With `as_arrays` the
+    direct construction's result is an `ArrayFst`.
 
     Raises:
       EmptyCompositionError: C accepts none of LG's phone sequences.
@@ -172,7 +194,7 @@ def compose_context_stage(cfst: pynini.Fst, lg: pynini.Fst, details: dict,
         out = dataclasses.replace(out, src=out.src[order], ilabel=ilabel[order],
                                   olabel=out.olabel[order], weight=out.weight[order],
                                   dst=out.dst[order])
-    return _fst_of(out)
+    return ArrayFst(out) if as_arrays else _fst_of(out)
 
 
 def remove_markers_stage(ifst: pynini.Fst, marker_ids: list[int]) -> pynini.Fst:
@@ -243,6 +265,12 @@ def _fst_of(arrays: FstArrays) -> pynini.Fst:
                          arc_type=arrays.arc_type)  # type: ignore[arg-type]
     share_arrays(ofst, arrays)
     return ofst
+
+
+def _connected(arrays: FstArrays) -> ArrayFst:
+    """The `ArrayFst` of arrays known to be connected (its checks need not search)."""
+    out = ArrayFst(arrays)
+    return out.set_properties(_CONNECTED, _CONNECTED)
 
 
 def _take_arrays(given: FstHandoff) -> FstArrays:
@@ -357,10 +385,12 @@ def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray]
     def compose_context(lg: pynini.Fst, details: dict) -> pynini.Fst:
         details["merged_models"] = len(merged)
         # (models with one chain become one label: they are indistinguishable)
-        return compose_context_stage(cfst, lg, details, classes if merged else None)
+        return compose_context_stage(cfst, lg, details, classes if merged else None,
+                                     as_arrays=True)
 
     def determinize(f: FstHandoff, details: dict) -> pynini.Fst:
-        return determinize_stage(f, opts, details=details)  # drops f once written
+        # drops f once written
+        return determinize_stage(f, opts, details=details, as_arrays=True)
 
     def unmark(given: FstHandoff, details: dict) -> pynini.Fst:
         details["markers"] = list(kind_table.markers)
@@ -369,11 +399,11 @@ def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray]
         marker_ids = np.array([table.find(m) for m in kind_table.markers], dtype=np.int64)
         ilabel = arrays.ilabel.copy()
         ilabel[np.isin(ilabel, marker_ids[marker_ids > 0])] = 0
-        return _fst_of(dataclasses.replace(arrays, ilabel=ilabel))
+        return ArrayFst(dataclasses.replace(arrays, ilabel=ilabel))
 
     def minimize(given: FstHandoff, details: dict) -> pynini.Fst:
         details["method"] = "refinement"
-        return _fst_of(minimize_arrays(_take_arrays(given)))
+        return ArrayFst(minimize_arrays(_take_arrays(given)))
 
     def expand(given: FstHandoff, details: dict) -> pynini.Fst:
         details["method"] = "trie"
@@ -381,12 +411,13 @@ def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray]
         if out is None:  # only models and epsilon are left after remove-markers
             raise StageError("expand-hmm", "the model-level graph has a label that is "
                              "not a model", "this is a netbuild bug")
-        return expanded_fst(out, connected=True)
+        return _connected(out)
 
-    def self_loops(f: FstHandoff, details: dict) -> pynini.Fst:
+    def self_loops(given: FstHandoff, details: dict) -> pynini.Fst:
         details["transition_scale"] = opts.transition_scale
         details["kinds"] = kind_table.num_kinds
-        return add_self_loops(f, kind_table, opts.transition_scale)
+        return ArrayFst(self_loop_arrays(_take_arrays(given), kind_table,
+                                         opts.transition_scale))
 
     deterministic = _STRUCTURE + (chk.check_input_deterministic,)
     unmarked = _STRUCTURE + (chk.check_no_auxiliary_markers,)
@@ -410,7 +441,8 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
                      contexts: Mapping[tuple[str, ...], str], opts: BuildOptions,
                      progress: Callable[[StageRecord], None] | None = None,
                      keep_intermediates: bool = False,
-                     context_fst: pynini.Fst | None = None) -> FullGraph:
+                     context_fst: pynini.Fst | None = None,
+                     word_fst: FstHandoff | None = None) -> FullGraph:
     """Builds the full graph from the word-level graph, the context map and the windows.
 
     Args:
@@ -426,6 +458,9 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
         on w5k_n200k); None builds it.
       keep_intermediates: keep every stage's FST in `FullGraph.intermediates` (else
         only C, H and the final graph; each stage's size is in its record either way).
+      word_fst: the word-level graph handed over by a caller that keeps no reference
+        to it (`WordGraph.spill`), so it is freed once C∘LG is built; None uses
+        ``word_graph.fst``.
 
     Returns:
       A `FullGraph`; its FST reads emission classes (``e<c>`` at ``c + 1``) and writes
@@ -436,7 +471,9 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
       CheckFailed: a netbuild bug (evidence saved on disk).
     """
     phones = lexicon.phone_symbols
-    words = word_graph.fst.output_symbols()
+    lg = word_graph.fst if word_fst is None else word_fst
+    # (a copy: a table obtained from an FST keeps that FST alive)
+    words = (lg if word_fst is None else word_fst.peek()).output_symbols().copy()
     records: list[StageRecord] = []
 
     started = time.perf_counter()
@@ -470,12 +507,14 @@ def build_full_graph(word_graph: WordGraph, lexicon: "LexiconResult", cmap: Cont
             return chk.CheckContext(stage, emissions, words)
         return chk.CheckContext(stage, kinds.symbols, words)
 
-    lg = word_graph.fst
     final, stage_records, kept = full_pipeline(cfst, hfst, kinds, opts).run(
         lg, checks=opts.checks, context=context, progress=progress,
         keep=keep_intermediates)
     final.set_input_symbols(emissions)
     final.set_output_symbols(words)
-    intermediates = {"context": cfst, "hmm": hfst, **kept, "graph": final}
-    return FullGraph(final, records + stage_records, intermediates, kinds, models,
-                     emissions)
+    intermediates = {"context": cfst, "hmm": hfst, **kept}
+    result = FullGraph(final, records + stage_records, intermediates, kinds, models,
+                       emissions)
+    if keep_intermediates:
+        intermediates["graph"] = result.fst
+    return result

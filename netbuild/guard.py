@@ -69,6 +69,12 @@ class FstHandoff:
     def __init__(self, fst: pynini.Fst) -> None:
         self._fst: pynini.Fst | None = fst
 
+    def peek(self) -> pynini.Fst:
+        """Returns the FST without forgetting it (for a look: keep no reference)."""
+        if self._fst is None:
+            raise RuntimeError("the FST of this handoff was already taken")
+        return self._fst
+
     def take(self) -> pynini.Fst:
         """Returns the FST and forgets it; a second call raises `RuntimeError`."""
         fst, self._fst = self._fst, None
@@ -136,7 +142,7 @@ def _limit_text(limit_bytes: int) -> str:
 def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout: float, *,
                         det_type: str = "functional", lfst: pynini.Fst | None = None,
                         gfst: pynini.Fst | None = None,
-                        stage: str = "determinize") -> GuardResult:
+                        stage: str = "determinize", as_arrays: bool = False) -> GuardResult:
     """Constructively determinizes the tropical transducer `ifst` in a child process.
 
     Args:
@@ -151,6 +157,8 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
         lfst, gfst: the L and G that `ifst` was composed from, if any; used by the
             pre-checks and to name the likely cause of a failure.
         stage: the stage name used in error messages.
+        as_arrays: return the result as a `netbuild.io.fstfile.ArrayFst` of the arrays
+            read from the child's file (no FST is built in this process).
 
     Returns:
         A `GuardResult` with the determinized FST (symbol tables kept).
@@ -215,12 +223,16 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
             # The child wrote a const file: its arrays are read with numpy and the FST
             # is built from them, which is cheaper than reading the file as a vector
             # FST and converting that back to arrays for the checks (20k / 1M: 4.5 s).
-            from .io.fstfile import arrays_to_fst, const_file_arrays
+            from .io.fstfile import ArrayFst, arrays_to_fst, const_file_arrays
 
             a = const_file_arrays(opath, isyms, osyms, arc_type)
-            ofst = arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
-                                 a.olabel, a.weight, a.dst, isymbols=isyms,
-                                 osymbols=osyms, arc_type=arc_type)
+            if as_arrays:
+                ofst = ArrayFst(a)
+                a = ofst.arrays
+            else:
+                ofst = arrays_to_fst(a.num_states, a.start, a.final_weights, a.src,
+                                     a.ilabel, a.olabel, a.weight, a.dst, isymbols=isyms,
+                                     osymbols=osyms, arc_type=arc_type)
             return GuardResult(ofst, int(status.get("peak_rss_bytes", 0)),
                                float(status.get("seconds", elapsed)), a)
     if code == _EXIT_MEMORY or "bad_alloc" in stderr or "MemoryError" in stderr:

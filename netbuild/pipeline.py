@@ -20,6 +20,7 @@ from __future__ import annotations
 import dataclasses
 import time
 from collections.abc import Callable, Sequence
+from pathlib import Path
 from typing import TYPE_CHECKING, Literal
 
 import numpy as np
@@ -31,8 +32,8 @@ from .errors import EmptyCompositionError, StageError
 from .footprint import SizeReport, fst_size
 from .guard import FstHandoff, determinize_guarded
 from . import lextree
-from .io.fstfile import (FstArrays, fst_to_arrays, retain_shared, share_arrays, shared_arrays,
-                         shared_conversions)
+from .io.fstfile import (FstArrays, as_fst, fst_to_arrays, retain_shared, share_arrays,
+                         shared_arrays, shared_conversions)
 from .bulk import value_iteration
 from .memory import peak_rss, release_free_memory, reset_peak
 from .options import BuildOptions
@@ -110,7 +111,7 @@ def compose_stage(lfst: pynini.Fst, gfst: pynini.Fst) -> pynini.Fst:
 
 def determinize_stage(ifst: pynini.Fst | FstHandoff, opts: BuildOptions, *,
                       lfst: pynini.Fst | None = None, gfst: pynini.Fst | None = None,
-                      details: dict | None = None) -> pynini.Fst:
+                      details: dict | None = None, as_arrays: bool = False) -> pynini.Fst:
     """Constructively determinizes the tropical transducer `ifst` in a guarded child.
 
     The input must be functional (L∘G with disambiguation and back-off markers is);
@@ -122,12 +123,13 @@ def determinize_stage(ifst: pynini.Fst | FstHandoff, opts: BuildOptions, *,
 
     With `opts.determinize_in_process` (the size prediction's small sub-builds, whose
     full build is guarded) it determinizes in this process instead, without limits.
+    With `as_arrays` a guarded result is an `ArrayFst` (`determinize_guarded`).
 
     Raises:
         DeterminizeError: a pre-check failed, or the child hit a limit or crashed.
     """
     if opts.determinize_in_process:
-        fst = ifst.take() if isinstance(ifst, FstHandoff) else ifst
+        fst = as_fst(ifst.take() if isinstance(ifst, FstHandoff) else ifst)
         try:
             ofst = pynini.determinize(fst, det_type="functional")
         except pywrapfst.FstError as err:
@@ -139,7 +141,7 @@ def determinize_stage(ifst: pynini.Fst | FstHandoff, opts: BuildOptions, *,
         return ofst
     result = determinize_guarded(ifst, opts.determinize_max_memory,
                                  opts.determinize_timeout, det_type="functional",
-                                 lfst=lfst, gfst=gfst)
+                                 lfst=lfst, gfst=gfst, as_arrays=as_arrays)
     if details is not None:
         details["child_peak_rss_bytes"] = result.peak_rss_bytes
         details["child_seconds"] = result.seconds
@@ -273,7 +275,7 @@ class Pipeline:
     def names(self) -> list[str]:
         return [s.name for s in self.steps]
 
-    def run(self, ifst: pynini.Fst, *, checks: bool = True,
+    def run(self, ifst: pynini.Fst | FstHandoff, *, checks: bool = True,
             context: Callable[[str], chk.CheckContext] | None = None,
             progress: Callable[[StageRecord], None] | None = None,
             keep: bool = False,
@@ -284,11 +286,13 @@ class Pipeline:
         stage's shared conversion, so no FST is needed for it afterwards. With `keep`,
         the result of each step with a `keep_as` key is returned under that key;
         without, none is, and each result is freed once the next stage is done with it
-        (unless the caller holds it: the input `ifst` stays the caller's).
+        (unless the caller holds it: the input `ifst` stays the caller's, unless it
+        is handed over as an `FstHandoff`).
         """
         records: list[StageRecord] = []
         kept: dict[str, pynini.Fst] = {}
-        fst, ifst = ifst, None  # one reference to the current FST: `fst`
+        # one reference to the current FST: `fst` (a handed-over input is then ours)
+        fst, ifst = (ifst.take() if isinstance(ifst, FstHandoff) else ifst), None
         carried: FstArrays | None = None  # the current FST's conversion, if made
         for step in self.steps:
             details: dict = {}
@@ -324,7 +328,7 @@ class Pipeline:
                                  peak, details, size)
             records.append(record)
             if keep and step.keep_as:
-                kept[step.keep_as] = fst
+                kept[step.keep_as] = as_fst(fst)
             if progress is not None:
                 progress(record)
         return fst, records, kept
@@ -337,11 +341,38 @@ class WordGraph:
     `intermediates` always holds "lexicon", "grammar" and "wordgraph" (the final FST);
     built with `keep_intermediates` also "composed", "determinized", "minimized" and
     "pushed" (when pushing is on). Each stage's size is in its record either way.
+
+    `spill(path)` lets go of the FST once it is written at `path`: `fst` then reads it
+    back on first use (the full graph's build does not keep the word-level graph
+    through its later stages: 20k / 1M, 200 MB).
     """
 
-    fst: pynini.Fst
+    _fst: pynini.Fst | None
     stages: list[StageRecord]
     intermediates: dict[str, pynini.Fst]
+    _source: Path | None = None
+
+    @property
+    def fst(self) -> pynini.Fst:
+        if self._fst is None:
+            if self._source is None:
+                raise RuntimeError("the word graph was spilled and has no file")
+            self._fst = pynini.Fst.read(str(self._source))
+        return self._fst
+
+    def spill(self, path: Path) -> pynini.Fst:
+        """Forgets the FST (and the intermediates that were built for it) and returns
+        it: the caller's is now the only reference. `path`, where it is written, is
+        read when `fst` is next asked for (`moved` tells a new place)."""
+        fst = self.fst
+        self._fst = None
+        self._source = Path(path)
+        self.intermediates = {}
+        return fst
+
+    def moved(self, path: Path) -> None:
+        """The spilled FST's file is now at `path`."""
+        self._source = Path(path)
 
 
 _STRUCTURE: tuple[Check, ...] = (chk.check_nonempty, chk.check_connected, chk.check_labels)

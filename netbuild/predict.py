@@ -183,7 +183,7 @@ def _final_graph(inputs, model: ArpaModel, opts, windows, full: bool = True,
         if full:
             built = build_full_graph(graph, lexicon, inputs.cmap, windows, opts,
                                      context_fst=cfst)
-            fst = built.fst
+            fst = built.graph
             context_states = next(r.states for r in built.stages
                                   if r.name == "compose-context")
         else:

@@ -93,6 +93,8 @@ from .builders.contexts import Coverage, check_coverage
 from .builders.context import window_models
 from .full_pipeline import FullGraph, build_full_graph, optimizes_at_model_level
 from .pipeline import StageRecord, WordGraph, build_word_graph
+from .guard import FstHandoff
+from .memory import release_free_memory
 from .lextree import tree_inputs
 from .predict import MemoryGuard, full_stage_order, stage_order
 from .project import Project, require_inputs
@@ -422,6 +424,51 @@ def _write_symbols(table: pynini.SymbolTable, path: Path) -> None:
     table.write_text(str(path))
 
 
+def _manifest(project: Project, opts, stages: list[StageRecord],
+              input_symbols: pynini.SymbolTable, lexicon, vocabulary, inputs: Inputs,
+              full) -> dict[str, Any]:
+    """The manifest of a build (module docstring)."""
+    manifest: dict[str, Any] = {
+        "format": MANIFEST_FORMAT,
+        "version": __version__,
+        "graph": GRAPH_FILE,
+        "word_symbols": WORD_SYMBOLS_FILE,
+        "input_symbols": INPUT_SYMBOLS_FILE,
+        "intermediates": {"grammar": GRAMMAR_FILE, "lexicon": LEXICON_FILE,
+                          "wordgraph": GRAPH_FILE},
+        "stages": [_stage_json(s) for s in stages],
+        "inputs": {"lexicon": _input_record(project.lexicon),
+                   "lm": _input_record(project.lm),
+                   "phones": _input_record(project.phones)},
+        "auxiliary_markers": [input_symbols.find(i)
+                              for i in range(input_symbols.available_key())
+                              if input_symbols.member(i)
+                              and is_auxiliary(input_symbols.find(i))],
+        "markers": {"count": int(lexicon.num_markers),
+                    "words": sorted({m.word for m in lexicon.markers})},
+        "vocabulary": {
+            "dropped": list(vocabulary.dropped),
+            "mapped_to_unk": list(vocabulary.mapped_to_unk),
+            "removed_unigram_mass": float(vocabulary.removed_unigram_mass),
+        },
+        "options": plain_json(opts),
+    }
+    if full is not None:
+        manifest["input_symbols"] = INPUT_SYMBOLS_FILE
+        manifest["phone_symbols"] = PHONE_SYMBOLS_FILE
+        manifest["intermediates"]["wordgraph"] = WORDGRAPH_FILE
+        manifest["inputs"]["context"] = _input_record(project.context)
+        manifest["hmm"] = {
+            "transition_scale": opts.transition_scale,
+            "final_optimize": opts.final_optimize,
+            "models": len(inputs.cmap.models),
+            "kinds": full.kind_table.num_kinds,
+            "emission_classes": full.kind_table.num_classes,
+            "windows": int(full.stages[0].details.get("windows", 0)),
+        }
+    return manifest
+
+
 def build(project: Project, out_dir: str | os.PathLike,
           progress: Progress | None = None, keep_intermediates: bool = False) -> BuildResult:
     """Compiles `project` and writes the output directory `out_dir` atomically.
@@ -466,6 +513,9 @@ def build(project: Project, out_dir: str | os.PathLike,
         started = time.perf_counter()
         grammar = build_grammar(model)
         built = {"grammar": time.perf_counter() - started}
+        # The model is in G now (20k / 1M: 60 MB of n-gram arrays freed)
+        model = None
+        inputs = dataclasses.replace(inputs, model=None)
         started = time.perf_counter()
         lexicon = build_lexicon(inputs.lexicon, inputs.inventory, grammar.word_symbols,
                                 opts.lexicon)
@@ -498,64 +548,43 @@ def build(project: Project, out_dir: str | os.PathLike,
 
         graph = build_word_graph(lexicon, grammar, opts, on_stage, keep_intermediates)
         input_symbols = lexicon.phone_symbols
-        full = None
-        if inputs.cmap is not None:
-            full = build_full_graph(graph, lexicon, inputs.cmap, context_windows(inputs),
-                                    opts, on_full_stage, keep_intermediates)
-        stages = list(graph.stages) + (list(full.stages) if full is not None else [])
-        manifest: dict[str, Any] = {
-            "format": MANIFEST_FORMAT,
-            "version": __version__,
-            "graph": GRAPH_FILE,
-            "word_symbols": WORD_SYMBOLS_FILE,
-            "input_symbols": INPUT_SYMBOLS_FILE,
-            "intermediates": {"grammar": GRAMMAR_FILE, "lexicon": LEXICON_FILE,
-                              "wordgraph": GRAPH_FILE},
-            "stages": [_stage_json(s) for s in stages],
-            "inputs": {"lexicon": _input_record(project.lexicon),
-                       "lm": _input_record(project.lm),
-                       "phones": _input_record(project.phones)},
-            "auxiliary_markers": [input_symbols.find(i)
-                                  for i in range(input_symbols.available_key())
-                                  if input_symbols.member(i)
-                                  and is_auxiliary(input_symbols.find(i))],
-            "markers": {"count": int(lexicon.num_markers),
-                        "words": sorted({m.word for m in lexicon.markers})},
-            "vocabulary": {
-                "dropped": list(vocabulary.dropped),
-                "mapped_to_unk": list(vocabulary.mapped_to_unk),
-                "removed_unigram_mass": float(vocabulary.removed_unigram_mass),
-            },
-            "options": plain_json(opts),
-        }
-        if full is not None:
-            manifest["input_symbols"] = INPUT_SYMBOLS_FILE
-            manifest["phone_symbols"] = PHONE_SYMBOLS_FILE
-            manifest["intermediates"]["wordgraph"] = WORDGRAPH_FILE
-            manifest["inputs"]["context"] = _input_record(project.context)
-            manifest["hmm"] = {
-                "transition_scale": opts.transition_scale,
-                "final_optimize": opts.final_optimize,
-                "models": len(inputs.cmap.models),
-                "kinds": full.kind_table.num_kinds,
-                "emission_classes": full.kind_table.num_classes,
-                "windows": int(full.stages[0].details.get("windows", 0)),
-            }
         with atomic_directory(out_dir) as tmp:
-            if full is not None:
-                write_fst(full.fst, tmp / GRAPH_FILE, opts.fst_type)
+            full = None
+            if inputs.cmap is not None:
+                # The word-level files are written first, so that G, L and the word
+                # graph need not stay in memory while the full graph is built (20k /
+                # 1M: 250 MB of the peak); the word graph is handed over and freed
+                # once C∘LG is built. `graph.fst` reads the file back if asked for.
                 write_fst(graph.fst, tmp / WORDGRAPH_FILE, "vector")
+                write_fst(grammar.fst, tmp / GRAMMAR_FILE, "vector")
+                write_fst(lexicon.fst, tmp / LEXICON_FILE, "vector")
+                word_fst = None
+                if not keep_intermediates:
+                    word_fst = FstHandoff(graph.spill(tmp / WORDGRAPH_FILE))
+                    grammar = dataclasses.replace(grammar, fst=None)
+                    lexicon = dataclasses.replace(lexicon, fst=None)
+                    release_free_memory()
+                full = build_full_graph(graph, lexicon, inputs.cmap,
+                                        context_windows(inputs), opts, on_full_stage,
+                                        keep_intermediates, word_fst=word_fst)
+                del word_fst
+            stages = list(graph.stages) + (list(full.stages) if full is not None else [])
+            manifest = _manifest(project, opts, stages, input_symbols, lexicon, vocabulary,
+                                 inputs, full)
+            if full is not None:
+                write_fst(full.graph, tmp / GRAPH_FILE, opts.fst_type)
                 _write_symbols(full.input_symbols, tmp / INPUT_SYMBOLS_FILE)
                 _write_symbols(input_symbols, tmp / PHONE_SYMBOLS_FILE)
             else:
                 write_fst(graph.fst, tmp / GRAPH_FILE, opts.fst_type)
-            write_fst(grammar.fst, tmp / GRAMMAR_FILE, "vector")
-            write_fst(lexicon.fst, tmp / LEXICON_FILE, "vector")
-            _write_symbols(grammar.word_symbols, tmp / WORD_SYMBOLS_FILE)
-            if full is None:
+                write_fst(grammar.fst, tmp / GRAMMAR_FILE, "vector")
+                write_fst(lexicon.fst, tmp / LEXICON_FILE, "vector")
                 _write_symbols(input_symbols, tmp / INPUT_SYMBOLS_FILE)
+            _write_symbols(grammar.word_symbols, tmp / WORD_SYMBOLS_FILE)
             (tmp / MANIFEST).write_text(json.dumps(manifest, indent=2) + "\n",
                                         encoding="utf-8")
+        if full is not None:
+            graph.moved(Path(out_dir) / WORDGRAPH_FILE)
         return BuildResult(Path(out_dir), manifest, stages, diag.warnings, graph, full)
 
 

@@ -274,9 +274,17 @@ def test_manifest_bytes_are_the_sizes_of_the_stage_fsts(tmp_path: Path):
         assert entry["bytes"]["vector"]["disk_bytes"] == len(fst.write_to_string())
         assert (entry["states"], entry["arcs"]) == (fst.num_states(), report.arcs)
     assert [s["bytes"] for s in plain.manifest["stages"]] == [s["bytes"] for s in stages]
-    # By default only G, L, the word graph, C, H and the final graph stay in memory.
-    assert set(plain.graph.intermediates) == {"grammar", "lexicon", "wordgraph"}
-    assert set(plain.full.intermediates) == {"context", "hmm", "graph"}
+    # By default a full build keeps only C and H as FSTs: the word-level graph was let
+    # go once written (its file is read back when asked for) and the final graph is
+    # held as arrays, built into an FST on demand.
+    from netbuild.io.fstfile import ArrayFst
+
+    assert plain.graph.intermediates == {}
+    assert set(plain.full.intermediates) == {"context", "hmm"}
+    assert isinstance(plain.full.graph, ArrayFst)
+    assert plain.graph.fst.num_states() == kept.graph.fst.num_states()
+    assert plain.graph.fst.print() == kept.graph.fst.print()
+    assert plain.full.fst.print() == kept.full.fst.print()
 
 
 def test_build_symbol_tables_follow_the_layout(first_build):

@@ -196,9 +196,6 @@ def add_self_loops(ifst: pynini.Fst | FstHandoff, kind_table: KindTable,
       StageError: `ifst` has an input label that is not epsilon or a kind, the scale is
         negative, or the result has too many states for 32-bit state ids.
     """
-    if not transition_scale >= 0.0:
-        raise StageError("self-loops", f"transition scale {transition_scale} is negative",
-                         "set the transition scale to a number >= 0")
     if isinstance(ifst, FstHandoff):
         fst = ifst.take()
         a = fst_to_arrays(fst)
@@ -207,12 +204,7 @@ def add_self_loops(ifst: pynini.Fst | FstHandoff, kind_table: KindTable,
         release_free_memory()  # the input's pages, for the arrays built next
     else:
         a = fst_to_arrays(ifst)
-    K = kind_table.num_kinds
-    if a.num_arcs and (a.ilabel.max() > K):
-        bad = int(a.ilabel[a.ilabel > K][0])
-        raise StageError("self-loops", f"input label {bad} is not an arc kind (1..{K})",
-                         "replace the auxiliary markers by epsilon before adding self-loops")
-    out = _self_loop_arrays(a, kind_table, transition_scale)
+    out = self_loop_arrays(a, kind_table, transition_scale)
     del a  # the input's arrays, before OpenFst reads the result
     release_free_memory()  # and the temporaries' pages, which malloc would keep
     ofst = arrays_to_fst(out.num_states, out.start, out.final_weights, out.src, out.ilabel,
@@ -220,6 +212,26 @@ def add_self_loops(ifst: pynini.Fst | FstHandoff, kind_table: KindTable,
                          isymbols=emission_symbols(kind_table), osymbols=out.osymbols)
     share_arrays(ofst, out)  # already grouped by state and sorted: what OpenFst holds
     return ofst
+
+
+def self_loop_arrays(a: FstArrays, kind_table: KindTable, transition_scale: float = 1.0
+                     ) -> FstArrays:
+    """The arrays of `add_self_loops`' result from the input's arrays `a` (its input
+    table replaced by `emission_symbols`); see `add_self_loops` for the layout.
+
+    Raises:
+      StageError: as `add_self_loops`.
+    """
+    if not transition_scale >= 0.0:
+        raise StageError("self-loops", f"transition scale {transition_scale} is negative",
+                         "set the transition scale to a number >= 0")
+    K = kind_table.num_kinds
+    if a.num_arcs and (a.ilabel.max() > K):
+        bad = int(a.ilabel[a.ilabel > K][0])
+        raise StageError("self-loops", f"input label {bad} is not an arc kind (1..{K})",
+                         "replace the auxiliary markers by epsilon before adding self-loops")
+    out = _self_loop_arrays(a, kind_table, transition_scale)
+    return dataclasses.replace(out, isymbols=emission_symbols(kind_table))
 
 
 def _segment_starts(counts: np.ndarray) -> np.ndarray:

@@ -9,7 +9,11 @@
 - `forget_shared(fst)`, `retain_shared(fst)`: drop one FST's conversion from the open
   block, or every one but `fst`'s, so the block no longer keeps those FSTs or their
   arrays alive.
-- `write_fst(fst, path, fst_type)`: writes a vector or const FST file atomically.
+- `ArrayFst`: an FST held only as its `FstArrays`, for stages whose work is done in
+  numpy; it answers what the pipeline and its checks ask of an FST and becomes a
+  `pynini.Fst` only on demand (`as_fst`).
+- `write_fst(fst, path, fst_type)`: writes a vector or const FST file atomically (an
+  `ArrayFst` straight from its arrays: `write_arrays`).
 
 Python loops calling `add_arc` cost about a microsecond per arc; writing the bytes that
 OpenFst's own reader expects and letting OpenFst read them moves the per-arc work into
@@ -71,14 +75,16 @@ import pywrapfst
 
 from ..errors import InputError, StageError
 
-__all__ = ["FstArrays", "arrays_to_fst", "forget_shared", "fst_to_arrays", "retain_shared",
-           "share_arrays", "shared_arrays", "shared_conversions", "write_fst"]
+__all__ = ["ArrayFst", "FstArrays", "arrays_to_fst", "as_fst", "forget_shared",
+           "fst_to_arrays", "retain_shared", "share_arrays", "shared_arrays",
+           "shared_conversions", "write_arrays", "write_fst"]
 
 FstFileType = Literal["vector", "const"]
 ArcType = Literal["standard", "log"]
 
 _MAGIC = 0x7EB2FDD6
 _CONST_VERSION = 2
+_VECTOR_VERSION = 2
 _FLAG_ISYMBOLS = 1
 _FLAG_OSYMBOLS = 2
 _FLAG_ALIGNED = 4
@@ -91,6 +97,7 @@ ARC_RECORD = np.dtype([("ilabel", "<i4"), ("olabel", "<i4"), ("weight", "<f4"),
 
 # OpenFst property bits (fst/properties.h).
 _EXPANDED = 0x1
+_MUTABLE = 0x2
 _ACCEPTOR, _NOT_ACCEPTOR = 0x10000, 0x20000
 _I_DETERMINISTIC, _NON_I_DETERMINISTIC = 0x40000, 0x80000
 _O_DETERMINISTIC, _NON_O_DETERMINISTIC = 0x100000, 0x200000
@@ -413,6 +420,8 @@ def _fingerprint(fst: pynini.Fst | pywrapfst.Fst) -> tuple:
 def shared_arrays(fst: pynini.Fst | pywrapfst.Fst) -> FstArrays | None:
     """Returns the conversion of `fst` already made in the open `shared_conversions`
     block, or None (no block, not converted yet, or changed since)."""
+    if isinstance(fst, ArrayFst):
+        return fst.arrays
     if _shared is None:
         return None
     entry = _shared.get(id(fst))
@@ -451,7 +460,7 @@ def share_arrays(fst: pynini.Fst | pywrapfst.Fst, arrays: FstArrays) -> None:
     it back. The caller vouches that `arrays` is exactly what `fst_to_arrays` would
     return: arcs grouped by state in the FST's order (as `arrays_to_fst` keeps them),
     float32 weights, symbol tables as on `fst`."""
-    if _shared is None:
+    if _shared is None or isinstance(fst, ArrayFst):
         return
     isyms, osyms = fst.input_symbols(), fst.output_symbols()
     shared = dataclasses.replace(
@@ -473,6 +482,8 @@ def fst_to_arrays(fst: pynini.Fst | pywrapfst.Fst) -> FstArrays:
     Raises:
       StageError: the FST's arc type does not store float32 weights.
     """
+    if isinstance(fst, ArrayFst):
+        return fst.arrays
     if _shared is not None:
         arrays = shared_arrays(fst)
         if arrays is None:
@@ -544,6 +555,287 @@ def _read_header(data: bytes) -> tuple[int, int, int, int]:
     return int(num_states), int(num_arcs), int(start), int(flags)
 
 
+def _bits(props: "int | pywrapfst.FstProperties") -> int:
+    return props if isinstance(props, int) else props.value
+
+
+# (positive bit, negative bit) of the properties an `ArrayFst` knows or can work out.
+_PAIRS = [(_bits(p), _bits(n)) for p, n in [
+          (pywrapfst.ACCEPTOR, pywrapfst.NOT_ACCEPTOR),
+          (pywrapfst.I_DETERMINISTIC, pywrapfst.NON_I_DETERMINISTIC),
+          (pywrapfst.O_DETERMINISTIC, pywrapfst.NON_O_DETERMINISTIC),
+          (pywrapfst.EPSILONS, pywrapfst.NO_EPSILONS),
+          (pywrapfst.I_EPSILONS, pywrapfst.NO_I_EPSILONS),
+          (pywrapfst.O_EPSILONS, pywrapfst.NO_O_EPSILONS),
+          (pywrapfst.I_LABEL_SORTED, pywrapfst.NOT_I_LABEL_SORTED),
+          (pywrapfst.O_LABEL_SORTED, pywrapfst.NOT_O_LABEL_SORTED),
+          (pywrapfst.WEIGHTED, pywrapfst.UNWEIGHTED),
+          (pywrapfst.CYCLIC, pywrapfst.ACYCLIC),
+          (pywrapfst.INITIAL_CYCLIC, pywrapfst.INITIAL_ACYCLIC),
+          (pywrapfst.TOP_SORTED, pywrapfst.NOT_TOP_SORTED),
+          (pywrapfst.ACCESSIBLE, pywrapfst.NOT_ACCESSIBLE),
+          (pywrapfst.COACCESSIBLE, pywrapfst.NOT_COACCESSIBLE),
+          (pywrapfst.STRING, pywrapfst.NOT_STRING),
+          (pywrapfst.WEIGHTED_CYCLES, pywrapfst.UNWEIGHTED_CYCLES)]]
+_ACCESSIBLE, _COACCESSIBLE = _bits(pywrapfst.ACCESSIBLE), _bits(pywrapfst.COACCESSIBLE)
+
+
+class ArrayFst:
+    """An FST held only as its `FstArrays` (arcs grouped by state, read-only).
+
+    The model-level stages of the full graph work in numpy from one array form to the
+    next; as vector FSTs their results cost about 100 bytes per state against 24 as
+    arrays (20k / 1M: the 6.3M-state expanded graph and the 6.7M-state final graph
+    were 650 and 730 MB), and building each one took seconds. An `ArrayFst` answers
+    what the pipeline, its checks and the size report ask of an FST -- counts, start,
+    tables, property bits (the structural ones worked out in bulk, others by OpenFst on
+    a built copy) -- `fst_to_arrays` returns its arrays as they are, `write_fst` writes
+    it straight from them, and `as_fst` builds the `pynini.Fst` when a caller needs one.
+    """
+
+    __slots__ = ("arrays", "_props")
+
+    def __init__(self, arrays: FstArrays) -> None:
+        src = arrays.src
+        if src.shape[0] > 1 and not (src[1:] >= src[:-1]).all():
+            order = np.argsort(src, kind="stable")
+            arrays = dataclasses.replace(arrays, src=src[order],
+                                         ilabel=arrays.ilabel[order],
+                                         olabel=arrays.olabel[order],
+                                         weight=arrays.weight[order], dst=arrays.dst[order])
+            del order
+        arrays = dataclasses.replace(
+            arrays, final_weights=_as(arrays.final_weights, np.float32),
+            src=_as(arrays.src, np.int32), ilabel=_as(arrays.ilabel, np.int32),
+            olabel=_as(arrays.olabel, np.int32), weight=_as(arrays.weight, np.float32),
+            dst=_as(arrays.dst, np.int32))
+        for a in (arrays.final_weights, arrays.src, arrays.ilabel, arrays.olabel,
+                  arrays.weight, arrays.dst):
+            a.flags.writeable = False
+        self.arrays = arrays
+        self._props = _known_properties(arrays.num_states, arrays.start,
+                                        arrays.final_weights, arrays.src, arrays.ilabel,
+                                        arrays.olabel, arrays.weight, arrays.dst)
+
+    # -- what an FST answers
+    def num_states(self) -> int:
+        return self.arrays.num_states
+
+    def start(self) -> int:
+        return self.arrays.start
+
+    def num_arcs(self, state: int | None = None) -> int:
+        if state is None:
+            return self.arrays.num_arcs
+        return int(np.count_nonzero(self.arrays.src == state))
+
+    def arc_type(self) -> str:
+        return self.arrays.arc_type
+
+    def fst_type(self) -> str:
+        return "arrays"
+
+    def input_symbols(self) -> pynini.SymbolTable | None:
+        return self.arrays.isymbols
+
+    def output_symbols(self) -> pynini.SymbolTable | None:
+        return self.arrays.osymbols
+
+    def set_input_symbols(self, table: pynini.SymbolTable | None) -> "ArrayFst":
+        self.arrays = dataclasses.replace(self.arrays,
+                                          isymbols=None if table is None else table.copy())
+        return self
+
+    def set_output_symbols(self, table: pynini.SymbolTable | None) -> "ArrayFst":
+        self.arrays = dataclasses.replace(self.arrays,
+                                          osymbols=None if table is None else table.copy())
+        return self
+
+    def properties(self, mask: "pywrapfst.FstProperties", test: bool
+                   ) -> "pywrapfst.FstProperties":
+        """OpenFst's `properties`: the known bits in `mask`, or with `test` the true
+        value of every bit in `mask` (worked out and remembered)."""
+        mask = _bits(mask)
+        if test:
+            unknown = [(p, n) for p, n in _PAIRS
+                       if mask & (p | n) and not self._props & (p | n)]
+            if unknown:
+                self._work_out(unknown)
+        return pywrapfst.FstProperties(self._props & mask)
+
+    def set_properties(self, props: "pywrapfst.FstProperties",
+                       mask: "pywrapfst.FstProperties") -> "ArrayFst":
+        props, mask = _bits(props), _bits(mask)
+        self._props = (self._props & ~mask) | (props & mask)
+        return self
+
+    def _work_out(self, pairs: list[tuple[int, int]]) -> None:
+        from ..bulk import reachable
+
+        a = self.arrays
+        rest = []
+        for pos, neg in pairs:
+            if pos == _ACCESSIBLE:
+                ok = a.start < 0 and a.num_states == 0 or a.start >= 0 and bool(
+                    reachable(a.num_states, a.src, a.dst, np.array([a.start])).all())
+            elif pos == _COACCESSIBLE:
+                ok = bool(reachable(a.num_states, a.dst, a.src,
+                                    np.flatnonzero(np.isfinite(a.final_weights))).all())
+            elif pos in (_I_DETERMINISTIC, _O_DETERMINISTIC):
+                labels = a.ilabel if pos == _I_DETERMINISTIC else a.olabel
+                key = np.sort(a.src.astype(np.int64) << 32 | labels)
+                ok = not bool((key[1:] == key[:-1]).any())
+                del key
+            else:
+                rest.append((pos, neg))
+                continue
+            self._props = (self._props & ~(pos | neg)) | (pos if ok else neg)
+        if rest:  # bits worked out by OpenFst on a built copy (not asked in a build)
+            mask = 0
+            for pos, neg in rest:
+                mask |= pos | neg
+            self._props |= _bits(as_fst(self).properties(pywrapfst.FstProperties(mask),
+                                                         True)) & mask
+
+    def write(self, path: str | os.PathLike) -> None:
+        """Writes a vector FST file (as `pynini.Fst.write` would)."""
+        write_arrays(self.arrays, path, "vector")
+
+    def draw(self, path: str, **kwargs) -> None:
+        as_fst(self).draw(path, **kwargs)
+
+    def arcs(self, state: int):
+        return as_fst(self).arcs(state)
+
+    def final(self, state: int):
+        return pynini.Weight(self.arc_type(), float(self.arrays.final_weights[state]))
+
+    def states(self):
+        return iter(range(self.arrays.num_states))
+
+
+def as_fst(fst: "pynini.Fst | pywrapfst.Fst | ArrayFst") -> pynini.Fst | pywrapfst.Fst:
+    """`fst` itself, or for an `ArrayFst` a `pynini.Fst` built from its arrays."""
+    if not isinstance(fst, ArrayFst):
+        return fst
+    a = fst.arrays
+    return arrays_to_fst(a.num_states, a.start, a.final_weights, a.src, a.ilabel, a.olabel,
+                         a.weight, a.dst, isymbols=a.isymbols, osymbols=a.osymbols,
+                         arc_type=a.arc_type)  # type: ignore[arg-type]
+
+
+# States per chunk when `write_arrays` writes an FST file (bounds its buffer).
+_WRITE_CHUNK_STATES = 1 << 20
+
+
+def _header(fst_type: str, arrays: FstArrays, props: int, num_arcs: int) -> bytes:
+    flags = (_FLAG_ISYMBOLS if arrays.isymbols is not None else 0) | \
+        (_FLAG_OSYMBOLS if arrays.osymbols is not None else 0)
+    version = _CONST_VERSION if fst_type == "const" else _VECTOR_VERSION
+    head = b"".join([struct.pack("<i", _MAGIC), _string(fst_type), _string(arrays.arc_type),
+                     struct.pack("<ii", version, flags), struct.pack("<Q", props),
+                     struct.pack("<qqq", arrays.start, arrays.num_states, num_arcs)])
+    tables = b"".join(t.write_to_string() for t in (arrays.isymbols, arrays.osymbols)
+                      if t is not None)
+    return head + tables
+
+
+def _write_const_body(out, a: FstArrays) -> None:
+    narcs = np.bincount(a.src, minlength=a.num_states).astype(np.int64)
+    first = np.zeros(a.num_states + 1, dtype=np.int64)
+    np.cumsum(narcs, out=first[1:])
+    for lo in range(0, a.num_states, _WRITE_CHUNK_STATES):
+        hi = min(lo + _WRITE_CHUNK_STATES, a.num_states)
+        states = np.zeros(hi - lo, dtype=STATE_RECORD)
+        states["final"] = a.final_weights[lo:hi]
+        states["pos"] = first[lo:hi]
+        states["narcs"] = narcs[lo:hi]
+        arcs = slice(first[lo], first[hi])
+        for field, labels in (("niepsilons", a.ilabel), ("noepsilons", a.olabel)):
+            eps = labels[arcs] == 0
+            if eps.any():
+                states[field] = np.bincount(a.src[arcs][eps] - lo, minlength=hi - lo)
+        out.write(states.tobytes())
+    n = a.num_arcs
+    chunk = _WRITE_CHUNK_STATES * 4
+    for lo in range(0, n, chunk):
+        hi = min(lo + chunk, n)
+        arcs = np.empty(hi - lo, dtype=ARC_RECORD)
+        arcs["ilabel"] = a.ilabel[lo:hi]
+        arcs["olabel"] = a.olabel[lo:hi]
+        arcs["weight"] = a.weight[lo:hi]
+        arcs["nextstate"] = a.dst[lo:hi]
+        out.write(arcs.tobytes())
+
+
+def _write_vector_body(out, a: FstArrays) -> None:
+    """Each state: float32 final weight, int64 number of arcs, then its arcs (16 bytes
+    each as in the const layout); all in 4-byte words, built a chunk of states at a
+    time."""
+    narcs = np.bincount(a.src, minlength=a.num_states).astype(np.int64)
+    first = np.zeros(a.num_states + 1, dtype=np.int64)
+    np.cumsum(narcs, out=first[1:])
+    for lo in range(0, a.num_states, _WRITE_CHUNK_STATES):
+        hi = min(lo + _WRITE_CHUNK_STATES, a.num_states)
+        alo, ahi = int(first[lo]), int(first[hi])
+        words = np.zeros(3 * (hi - lo) + 4 * (ahi - alo), dtype="<i4")
+        rel = first[lo:hi] - alo
+        at = 3 * np.arange(hi - lo, dtype=np.int64) + 4 * rel  # each state's record
+        words[at] = a.final_weights[lo:hi].view("<i4")
+        counts = narcs[lo:hi]
+        words[at + 1] = (counts & 0xFFFFFFFF).astype(np.uint32).view("<i4")
+        words[at + 2] = (counts >> 32).astype("<i4")
+        # arc i of state s sits after s's record and the arcs before it
+        pos = 3 * (a.src[alo:ahi].astype(np.int64) - lo + 1) \
+            + 4 * np.arange(ahi - alo, dtype=np.int64)
+        words[pos] = a.ilabel[alo:ahi]
+        words[pos + 1] = a.olabel[alo:ahi]
+        words[pos + 2] = a.weight[alo:ahi].view("<i4")
+        words[pos + 3] = a.dst[alo:ahi]
+        out.write(words.tobytes())
+
+
+def write_arrays(arrays: FstArrays, path: str | os.PathLike,
+                 fst_type: FstFileType = "vector") -> None:
+    """Writes `arrays` as an OpenFst vector or const FST file, atomically, from numpy in
+    chunks (no FST is built: 20k / 1M, the 15.8M-arc final graph).
+
+    The bytes are OpenFst's own (`tests/io/test_fstfile.py` compares them with files
+    OpenFst wrote), except the properties word, which holds only the bits established
+    from the arrays, and the vector header's arc count, which OpenFst leaves 0 and so
+    do we.
+
+    Raises:
+      InputError: `fst_type` is unknown, or the file cannot be written.
+    """
+    path = os.fspath(path)
+    if fst_type not in ("vector", "const"):
+        raise InputError(f"FST type '{fst_type}' is unknown", "use 'vector' or 'const'",
+                         path=path)
+    a = arrays
+    props = _known_properties(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
+                              a.olabel, a.weight, a.dst)
+    if fst_type == "vector":
+        props |= _MUTABLE
+    directory = os.path.dirname(os.path.abspath(path))
+    tmp = None
+    try:
+        fd, tmp = tempfile.mkstemp(dir=directory, prefix=f".{os.path.basename(path)}.",
+                                   suffix=".tmp")
+        with os.fdopen(fd, "wb") as out:
+            out.write(_header(fst_type, a, props, a.num_arcs if fst_type == "const" else 0))
+            (_write_const_body if fst_type == "const" else _write_vector_body)(out, a)
+        os.replace(tmp, path)
+        tmp = None
+    except OSError as err:
+        raise InputError(f"cannot write the FST file ({err})",
+                         "check that the directory exists and is writable",
+                         path=path) from err
+    finally:
+        if tmp is not None and os.path.exists(tmp):
+            os.unlink(tmp)
+
+
 def write_fst(fst: pynini.Fst, path: str | os.PathLike,
               fst_type: FstFileType = "vector") -> None:
     """Writes `fst` to `path` as a vector or const FST file, atomically.
@@ -554,6 +846,9 @@ def write_fst(fst: pynini.Fst, path: str | os.PathLike,
     Raises:
       InputError: `fst_type` is unknown, or the file cannot be written.
     """
+    if isinstance(fst, ArrayFst):
+        write_arrays(fst.arrays, path, fst_type)
+        return
     path = os.fspath(path)
     if fst_type not in ("vector", "const"):
         raise InputError(f"FST type '{fst_type}' is unknown", "use 'vector' or 'const'",

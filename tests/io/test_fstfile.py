@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 from unittest import mock
 
 import numpy as np
@@ -267,3 +268,112 @@ def test_a_large_image_round_trips():
 def test_labels_beyond_32_bits_are_refused():
     with pytest.raises(StageError, match="does not fit the 32-bit layout"):
         arrays_to_fst(2, 0, np.zeros(2), [0], [2**31], [1], [0.0], [1])
+
+
+# ------------------------------------------------------------ ArrayFst and write_arrays
+
+from netbuild.io.fstfile import ArrayFst, as_fst, write_arrays  # noqa: E402
+
+ALL_PAIRS = [(P.ACCEPTOR, P.NOT_ACCEPTOR), (P.I_DETERMINISTIC, P.NON_I_DETERMINISTIC),
+             (P.O_DETERMINISTIC, P.NON_O_DETERMINISTIC), (P.EPSILONS, P.NO_EPSILONS),
+             (P.I_EPSILONS, P.NO_I_EPSILONS), (P.O_EPSILONS, P.NO_O_EPSILONS),
+             (P.I_LABEL_SORTED, P.NOT_I_LABEL_SORTED),
+             (P.O_LABEL_SORTED, P.NOT_O_LABEL_SORTED), (P.WEIGHTED, P.UNWEIGHTED),
+             (P.CYCLIC, P.ACYCLIC), (P.INITIAL_CYCLIC, P.INITIAL_ACYCLIC),
+             (P.TOP_SORTED, P.NOT_TOP_SORTED), (P.ACCESSIBLE, P.NOT_ACCESSIBLE),
+             (P.COACCESSIBLE, P.NOT_COACCESSIBLE), (P.STRING, P.NOT_STRING),
+             (P.WEIGHTED_CYCLES, P.UNWEIGHTED_CYCLES)]
+
+
+def _props_offset(data: bytes) -> int:
+    """Where the 8-byte properties word of an OpenFst header starts."""
+    import struct
+
+    offset = 4
+    for _ in range(2):  # FST type, arc type
+        (length,) = struct.unpack_from("<i", data, offset)
+        offset += 4 + length
+    return offset + 8  # version, flags
+
+
+@given(fst_arrays())
+def test_array_fst_properties_are_openfsts(args):
+    # reference: OpenFst's property computation (Fst.properties with test=True), pair
+    # by pair, on the same FST built arc by arc
+    slow = python_fst(*args)
+    for pair in ALL_PAIRS:
+        mask = pair[0] | pair[1]
+        fresh = ArrayFst(fst_to_arrays(slow))  # (each pair worked out from nothing)
+        assert fresh.properties(mask, True) == slow.copy().properties(mask, True), pair
+
+
+@given(fst_arrays())
+def test_array_fst_answers_as_the_fst(args):
+    slow = python_fst(*args)
+    a = ArrayFst(fst_to_arrays(slow))
+    assert (a.num_states(), a.start(), a.num_arcs()) == \
+        (slow.num_states(), slow.start(), sum(slow.num_arcs(s) for s in slow.states()))
+    assert fst_to_arrays(a) is a.arrays
+    assert str(as_fst(a)) == str(slow)
+    # the arcs may come in any order: they are grouped by state, stably
+    n, start, fin, src, il, ol, w, dst = args
+    rev = ArrayFst(dataclasses.replace(
+        fst_to_arrays(slow), src=np.array(src[::-1], np.int32),
+        ilabel=np.array(il[::-1], np.int32), olabel=np.array(ol[::-1], np.int32),
+        weight=np.array(w[::-1], np.float32), dst=np.array(dst[::-1], np.int32)))
+    reversed_slow = python_fst(n, start, fin, src[::-1], il[::-1], ol[::-1], w[::-1],
+                               dst[::-1])
+    assert str(as_fst(rev)) == str(reversed_slow)
+
+
+@pytest.mark.parametrize("fst_type", ["vector", "const"])
+@given(args=fst_arrays(), tables=st.booleans())
+def test_write_arrays_writes_openfsts_bytes(tmp_path_factory, fst_type, args, tables):
+    # reference: the file OpenFst itself writes for the same FST (pywrapfst write,
+    # after convert for const): the same bytes except the properties word, whose bits
+    # must all hold for the FST
+    slow = python_fst(*args)
+    if tables:
+        syms = make_symbol_table("t", ["a", "b", "c", "d"])
+        slow.set_input_symbols(syms)
+        slow.set_output_symbols(syms)
+    where = tmp_path_factory.mktemp("w")
+    theirs = slow if fst_type == "vector" else pywrapfst.convert(slow, "const")
+    theirs.write(str(where / "theirs.fst"))
+    write_arrays(fst_to_arrays(slow), where / "ours.fst", fst_type)
+    ours_bytes = (where / "ours.fst").read_bytes()
+    theirs_bytes = (where / "theirs.fst").read_bytes()
+    at = _props_offset(theirs_bytes)
+    assert len(ours_bytes) == len(theirs_bytes)
+    assert ours_bytes[:at] == theirs_bytes[:at] and ours_bytes[at + 8:] == theirs_bytes[at + 8:]
+    back = pywrapfst.Fst.read(str(where / "ours.fst"))
+    assert back.fst_type() == fst_type
+    known = back.properties(CHECKED, False)
+    assert known & slow.properties(CHECKED, True) == known
+    assert str(back) == str(slow)
+
+
+def test_write_arrays_in_chunks(tmp_path, monkeypatch):
+    """A graph larger than one chunk of states is written piece by piece, the same."""
+    import netbuild.io.fstfile as fstfile
+
+    rng = np.random.default_rng(5)
+    n, m = 300, 1200
+    src = np.sort(rng.integers(0, n, m)).astype(np.int32)
+    args = (n, 0, np.where(rng.random(n) < 0.2, 0.5, np.inf).astype(np.float32), src,
+            rng.integers(0, 6, m).astype(np.int32), rng.integers(0, 6, m).astype(np.int32),
+            rng.random(m).astype(np.float32), rng.integers(0, n, m).astype(np.int32))
+    fst = arrays_to_fst(*args)
+    monkeypatch.setattr(fstfile, "_WRITE_CHUNK_STATES", 7)
+    for fst_type in ("vector", "const"):
+        write_arrays(fst_to_arrays(fst), tmp_path / f"{fst_type}.fst", fst_type)
+        assert str(pywrapfst.Fst.read(str(tmp_path / f"{fst_type}.fst"))) == str(fst)
+
+
+def test_write_fst_writes_an_array_fst(tmp_path):
+    fst = pynini.accep("abc")
+    write_fst(ArrayFst(fst_to_arrays(fst)), tmp_path / "a.fst", "const")
+    back = pywrapfst.Fst.read(str(tmp_path / "a.fst"))
+    assert back.fst_type() == "const" and str(back) == str(fst)
+    with pytest.raises(InputError):
+        write_fst(ArrayFst(fst_to_arrays(fst)), tmp_path / "a.fst", "compact")

@@ -77,11 +77,11 @@ def test_ropeway_demo_word_graph_equals_composition(tmp_path):
     """The demo's optimized word-level graph (determinized, minimized, pushed) against
     its unoptimized L∘G, both with markers (reference: OpenFst randequivalent)."""
     from netbuild.project import read_project
-    from netbuild.workflow import build
+    from netbuild.workflow import build, load_build
 
     result = build(read_project(_DEMO), tmp_path / "demo")
-    kept = result.graph.intermediates
-    composed = compose_stage(kept["lexicon"], kept["grammar"])
+    loaded = load_build(tmp_path / "demo")  # (a full build keeps G and L only on disk)
+    composed = compose_stage(loaded.lexicon, loaded.grammar)
     final = result.graph.fst
     assert final.num_states() < composed.num_states()
     assert pynini.randequivalent(to_log(composed), to_log(final), npath=500, seed=3,
