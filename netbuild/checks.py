@@ -30,7 +30,7 @@ import pynini
 import pywrapfst
 
 from .errors import CheckFailed, EmptyCompositionError, InputCheckFailed
-from .io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, shared_arrays
+from .io.fstfile import FstArrays, arrays_to_fst, as_fst, fst_to_arrays, shared_arrays
 from .symbols import BACKOFF, is_auxiliary
 from .bulk import reachable, unique_sorted
 
@@ -86,6 +86,7 @@ def _subgraph(fst: pynini.Fst, focus: Iterable[int], max_states: int = 40) -> py
 
 def save_evidence(fst: pynini.Fst, stage: str, focus: Iterable[int] = ()) -> str:
     """Saves `fst` (binary) and a small DOT drawing around `focus`; returns the directory."""
+    fst = as_fst(fst)  # (an ArrayFst is built once, not once per state looked at)
     where = tempfile.mkdtemp(prefix=f"netbuild-{stage}-")
     fst.write(os.path.join(where, f"{stage}.fst"))
     small = fst if fst.num_states() <= 40 else _subgraph(fst, focus)

@@ -66,7 +66,7 @@ import mmap
 import os
 import struct
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from typing import Literal
 
 import numpy as np
@@ -701,18 +701,6 @@ class ArrayFst:
         """Writes a vector FST file (as `pynini.Fst.write` would)."""
         write_arrays(self.arrays, path, "vector")
 
-    def draw(self, path: str, **kwargs) -> None:
-        as_fst(self).draw(path, **kwargs)
-
-    def arcs(self, state: int):
-        return as_fst(self).arcs(state)
-
-    def final(self, state: int):
-        return pynini.Weight(self.arc_type(), float(self.arrays.final_weights[state]))
-
-    def states(self):
-        return iter(range(self.arrays.num_states))
-
 
 def as_fst(fst: "pynini.Fst | pywrapfst.Fst | ArrayFst") -> pynini.Fst | pywrapfst.Fst:
     """`fst` itself, or for an `ArrayFst` a `pynini.Fst` built from its arrays."""
@@ -740,10 +728,16 @@ def _header(fst_type: str, arrays: FstArrays, props: int, num_arcs: int) -> byte
     return head + tables
 
 
-def _write_const_body(out, a: FstArrays) -> None:
+def _arc_runs(a: FstArrays) -> tuple[np.ndarray, np.ndarray]:
+    """Each state's number of arcs and (one entry more) where its arcs start."""
     narcs = np.bincount(a.src, minlength=a.num_states).astype(np.int64)
     first = np.zeros(a.num_states + 1, dtype=np.int64)
     np.cumsum(narcs, out=first[1:])
+    return narcs, first
+
+
+def _write_const_body(out, a: FstArrays) -> None:
+    narcs, first = _arc_runs(a)
     for lo in range(0, a.num_states, _WRITE_CHUNK_STATES):
         hi = min(lo + _WRITE_CHUNK_STATES, a.num_states)
         states = np.zeros(hi - lo, dtype=STATE_RECORD)
@@ -772,9 +766,7 @@ def _write_vector_body(out, a: FstArrays) -> None:
     """Each state: float32 final weight, int64 number of arcs, then its arcs (16 bytes
     each as in the const layout); all in 4-byte words, built a chunk of states at a
     time."""
-    narcs = np.bincount(a.src, minlength=a.num_states).astype(np.int64)
-    first = np.zeros(a.num_states + 1, dtype=np.int64)
-    np.cumsum(narcs, out=first[1:])
+    narcs, first = _arc_runs(a)
     for lo in range(0, a.num_states, _WRITE_CHUNK_STATES):
         hi = min(lo + _WRITE_CHUNK_STATES, a.num_states)
         alo, ahi = int(first[lo]), int(first[hi])
@@ -808,26 +800,42 @@ def write_arrays(arrays: FstArrays, path: str | os.PathLike,
     Raises:
       InputError: `fst_type` is unknown, or the file cannot be written.
     """
-    path = os.fspath(path)
-    if fst_type not in ("vector", "const"):
-        raise InputError(f"FST type '{fst_type}' is unknown", "use 'vector' or 'const'",
-                         path=path)
     a = arrays
     props = _known_properties(a.num_states, a.start, a.final_weights, a.src, a.ilabel,
                               a.olabel, a.weight, a.dst)
     if fst_type == "vector":
         props |= _MUTABLE
+
+    def write(tmp: str) -> None:
+        with open(tmp, "wb") as out:
+            out.write(_header(fst_type, a, props, a.num_arcs if fst_type == "const" else 0))
+            (_write_const_body if fst_type == "const" else _write_vector_body)(out, a)
+
+    _write_atomically(path, fst_type, write)
+
+
+def _write_atomically(path: str | os.PathLike, fst_type: str,
+                      write: Callable[[str], None]) -> None:
+    """Checks `fst_type`, has `write` fill a temporary file beside `path`, then renames
+    it to `path` (a failed write leaves any old file and no temporary one).
+
+    Raises:
+      InputError: `fst_type` is unknown, or the file cannot be written.
+    """
+    path = os.fspath(path)
+    if fst_type not in ("vector", "const"):
+        raise InputError(f"FST type '{fst_type}' is unknown", "use 'vector' or 'const'",
+                         path=path)
     directory = os.path.dirname(os.path.abspath(path))
     tmp = None
     try:
         fd, tmp = tempfile.mkstemp(dir=directory, prefix=f".{os.path.basename(path)}.",
                                    suffix=".tmp")
-        with os.fdopen(fd, "wb") as out:
-            out.write(_header(fst_type, a, props, a.num_arcs if fst_type == "const" else 0))
-            (_write_const_body if fst_type == "const" else _write_vector_body)(out, a)
+        os.close(fd)
+        write(tmp)
         os.replace(tmp, path)
         tmp = None
-    except OSError as err:
+    except (OSError, pywrapfst.FstError) as err:
         raise InputError(f"cannot write the FST file ({err})",
                          "check that the directory exists and is writable",
                          path=path) from err
@@ -849,26 +857,11 @@ def write_fst(fst: pynini.Fst, path: str | os.PathLike,
     if isinstance(fst, ArrayFst):
         write_arrays(fst.arrays, path, fst_type)
         return
-    path = os.fspath(path)
-    if fst_type not in ("vector", "const"):
-        raise InputError(f"FST type '{fst_type}' is unknown", "use 'vector' or 'const'",
-                         path=path)
-    directory = os.path.dirname(os.path.abspath(path))
-    tmp = None
-    try:
-        fd, tmp = tempfile.mkstemp(dir=directory, prefix=f".{os.path.basename(path)}.",
-                                   suffix=".tmp")
-        os.close(fd)
+
+    def write(tmp: str) -> None:
         out = fst if fst_type == "vector" else pywrapfst.convert(fst, "const")
         if fst_type == "vector" and fst.fst_type() != "vector":
             out = pywrapfst.convert(fst, "vector")
         out.write(tmp)
-        os.replace(tmp, path)
-        tmp = None
-    except (OSError, pywrapfst.FstError) as err:
-        raise InputError(f"cannot write the FST file ({err})",
-                         "check that the directory exists and is writable",
-                         path=path) from err
-    finally:
-        if tmp is not None and os.path.exists(tmp):
-            os.unlink(tmp)
+
+    _write_atomically(path, fst_type, write)
