@@ -167,6 +167,23 @@ def weight_bits(weights: np.ndarray) -> np.ndarray:
     return w.view(np.uint32).astype(np.int64)
 
 
+_INFINITE_KEY = np.iinfo(np.int64).max
+
+
+def weight_keys(weights: np.ndarray, quantum: float = 0.0) -> np.ndarray:
+    """int64 keys of `weights` that are equal where the weights count as equal: their
+    float32 bits (`weight_bits`) when `quantum` is 0, else the nearest multiple of
+    `quantum` (so weights within float rounding noise of each other share a key;
+    infinity has a key of its own)."""
+    if quantum == 0.0:
+        return weight_bits(weights)
+    w = np.asarray(weights, dtype=np.float64)
+    finite = np.isfinite(w)
+    keys = np.full(w.shape, _INFINITE_KEY, dtype=np.int64)
+    keys[finite] = np.rint(w[finite] / quantum).astype(np.int64)
+    return keys
+
+
 def hash_classes(h1: np.ndarray, h2: np.ndarray) -> np.ndarray:
     """Dense class ids of the (h1, h2) pairs (ids follow the order of h1, then h2)."""
     if len(h1) == 0:

@@ -181,6 +181,9 @@ def _build_options(f):
                      "composition and determinization (compose)."),
         click.option("--transition-scale", type=click.FloatRange(0.0), metavar="X",
                      help="Full graph: scale of the HMM self-loop and exit costs."),
+        click.option("--weight-quantum", type=click.FloatRange(0.0), metavar="X",
+                     help="Full graph: weights that round to the same multiple of X count "
+                     "as equal when minimizing (0: bit for bit; default 1e-4)."),
     ]):
         f = option(f)
     return f

@@ -18,7 +18,9 @@ models' kind chains a prefix code, `model_level_plan`). Stages:
    with equal chains become one label.
 2. ``determinize-models``: guarded determinization of C∘LG over models.
 3. ``remove-markers``: markers made epsilon, on the arrays.
-4. ``minimize-models``: encoded minimization by partition refinement (`netbuild.refine`).
+4. ``minimize-models``: the weights pushed toward the start (tropical,
+   `netbuild.reweight`), then encoded minimization by partition refinement with
+   weights compared to within ``opts.weight_quantum`` (`netbuild.refine`).
 5. ``expand-hmm``: each state's model arcs expanded into the trie of their kind chains,
    equal trie nodes merged (`netbuild.builders.hmm_expand.trie_arrays`); this is what
    determinizing and minimizing H∘CLG over kinds gives (the argument is in that
@@ -101,6 +103,7 @@ from .options import BuildOptions
 from .pipeline import (Pipeline, StageRecord, Step, WordGraph, _input_record,
                        determinize_stage)
 from .refine import minimize_arrays
+from .reweight import distances_to_final, push_arrays
 
 if TYPE_CHECKING:
     from .builders.lexicon import LexiconResult
@@ -376,6 +379,25 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
     return Pipeline(steps)
 
 
+def _pushed(a: FstArrays, details: dict) -> FstArrays:
+    """`a` with its weights pushed toward the start (tropical), when its distances to
+    the final states settle (`reweight.distances_to_final`); else `a` as it is.
+
+    Why before the minimization: determinization leaves each state's weight where its
+    subset's residuals put it, so two states with the same future up to where the
+    weight sits are not equal as encoded acceptors; after the push every state's
+    cheapest way out costs 0 and such states are merged (on the 20k / 1M set the final
+    graph has 15,589,843 arcs instead of 15,831,837).
+    """
+    potentials = distances_to_final(a.num_states, a.src, a.dst, a.weight, a.final_weights)
+    details["pushed"] = potentials is not None
+    if potentials is None:
+        details["push_skipped"] = ("the distances to the final states do not settle "
+                                   "(a cycle of negative weight)")
+        return a
+    return push_arrays(a, potentials)
+
+
 def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray],
                           kind_table: KindTable, opts: BuildOptions) -> Pipeline:
     """The optimized pipeline at the model level (module docstring, "Model level")."""
@@ -403,7 +425,9 @@ def _model_level_pipeline(cfst: pynini.Fst, plan: tuple[ModelChains, np.ndarray]
 
     def minimize(given: FstHandoff, details: dict) -> pynini.Fst:
         details["method"] = "refinement"
-        return ArrayFst(minimize_arrays(_take_arrays(given)))
+        details["weight_quantum"] = opts.weight_quantum
+        return ArrayFst(minimize_arrays(_pushed(_take_arrays(given), details),
+                                        quantum=opts.weight_quantum))
 
     def expand(given: FstHandoff, details: dict) -> pynini.Fst:
         details["method"] = "trie"

@@ -5,8 +5,6 @@
 - `build_tree_graph(inputs)`: the determinized L∘G (`TreeGraph`: arrays and structure).
 - `minimize_tree_graph(tree)`: its minimal form as an encoded acceptor (labels and
   weights read as one label, as `pipeline.minimize_stage` does).
-- `distances_to_final(...)`, `push_arrays(arcs, potentials)`: tropical distances and
-  the weight push they give.
 - `log_total_diverges(inputs)`: whether L∘G's log-semiring total is unbounded.
 
 Why it works. G is deterministic on its input (one arc per word and state, the back-off
@@ -65,11 +63,11 @@ from .builders.lexicon import LexiconResult, Pronunciations
 from .errors import EmptyCompositionError
 from .io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
 from .refine import quotient
+from .reweight import distances_to_final
 from .symbols import BACKOFF
 
 __all__ = ["TreeInputs", "TreeGraph", "tree_inputs", "build_tree_graph",
-           "minimize_tree_graph", "distances_to_final", "push_arrays",
-           "log_total_diverges"]
+           "minimize_tree_graph", "log_total_diverges"]
 
 
 @dataclasses.dataclass(frozen=True)
@@ -641,72 +639,6 @@ def minimize_tree_graph(tree: TreeGraph) -> tuple[FstArrays, np.ndarray | None]:
         next_cls += int(c.max()) + 1
     arcs, rep = quotient(a, cls)
     return arcs, None if tree.potentials is None else tree.potentials[rep]
-
-
-# ------------------------------------------------------------------ pushing
-
-
-def distances_to_final(num_states: int, src: np.ndarray, dst: np.ndarray,
-                       weight: np.ndarray, final: np.ndarray,
-                       max_passes: int = 5000) -> np.ndarray | None:
-    """Each state's tropical distance to the final states (inf: none reachable).
-
-    Bellman-Ford passes in bulk (float64) until nothing changes; None when they do not
-    settle within `max_passes` (a cycle of negative weight).
-    """
-    src, dst = np.asarray(src, dtype=np.int64), np.asarray(dst, dtype=np.int64)
-    weight = np.asarray(weight, dtype=np.float64)
-    v = np.asarray(final, dtype=np.float64).copy()
-    if len(src) == 0:
-        return v
-    order = np.argsort(src, kind="stable")
-    s_sorted, w_sorted, d_sorted = src[order], weight[order], dst[order]
-    starts = np.flatnonzero(np.r_[True, s_sorted[1:] != s_sorted[:-1]])
-    owners = s_sorted[starts]
-    base = v[owners]
-    for _ in range(max_passes):
-        best = np.minimum(base, np.minimum.reduceat(w_sorted + v[d_sorted], starts))
-        if np.array_equal(best, v[owners]):
-            return v
-        v[owners] = best
-    return None
-
-
-def push_arrays(arcs: FstArrays, potentials: np.ndarray) -> FstArrays:
-    """Constructively reweights `arcs` toward the start state with `potentials`.
-
-    Arcs become w + V(next) - V(state), finals f - V(state); V(start) goes back onto the
-    start state's arcs and final weight (onto a new start state's copies of them when
-    arcs return to the start), so every complete path keeps its weight. With V the
-    distances to the final states (tropical), each state's cheapest way out then costs
-    0. The arcs stay grouped by state (a new start state comes last).
-    """
-    src, dst = arcs.src.astype(np.int64), arcs.dst.astype(np.int64)
-    v = np.where(np.isfinite(potentials), potentials, 0.0)
-    w = arcs.weight.astype(np.float64) + v[dst] - v[src]
-    final = arcs.final_weights.astype(np.float64)
-    final = np.where(np.isfinite(final), final - v, np.inf)
-    s = arcs.start
-    il, ol, num_states = arcs.ilabel, arcs.olabel, arcs.num_states
-    if s >= 0 and np.any(dst == s):
-        # Arcs come back to the start state, so V(start) cannot go onto its arcs (each
-        # return would pay it again): a new start state gets copies of them instead.
-        out = np.flatnonzero(src == s)
-        num_states += 1
-        src = np.concatenate([src, np.full(len(out), num_states - 1)])
-        il, ol = np.concatenate([il, il[out]]), np.concatenate([ol, ol[out]])
-        w = np.concatenate([w, w[out] + v[s]])
-        dst = np.concatenate([dst, dst[out]])
-        final = np.concatenate([final, [final[s] + v[s]]])
-        s = num_states - 1
-    elif s >= 0:
-        w[src == s] += v[s]
-        if np.isfinite(final[s]):
-            final[s] += v[s]
-    w[np.abs(w) < 1e-6] = 0.0  # rounding noise where the cheapest way out is taken
-    return FstArrays(num_states, s, final.astype(np.float32), src.astype(np.int32),
-                     il.astype(np.int32), ol.astype(np.int32), w.astype(np.float32),
-                     dst.astype(np.int32))
 
 
 def log_total_diverges(inputs: TreeInputs, max_iterations: int = 3000) -> bool:

@@ -45,6 +45,9 @@ class BuildOptions:
     max_memory: int = 0  # bytes; stop before a stage estimated to need more; 0: no limit
     transition_scale: float = 1.0  # full graph: multiplies the HMM self-loop and exit costs
     final_optimize: bool = True  # full graph: determinize and minimize H∘C∘L∘G
+    # full graph: at the model level, weights that round to the same multiple of this
+    # count as equal when minimizing (0: bit for bit); see netbuild.refine
+    weight_quantum: float = 1e-4
     # The word-level graph: "tree" builds det(L∘G) directly from G's arcs and the
     # pronunciations (netbuild.lextree), falling back to "compose" (OpenFst's
     # composition and determinization) where its preconditions do not hold.

@@ -32,6 +32,7 @@ from .errors import EmptyCompositionError, StageError
 from .footprint import SizeReport, fst_size
 from .guard import FstHandoff, determinize_guarded
 from . import lextree
+from .reweight import push_arrays
 from .io.fstfile import (FstArrays, as_fst, fst_to_arrays, retain_shared, share_arrays,
                          shared_arrays, shared_conversions)
 from .bulk import value_iteration
@@ -450,7 +451,7 @@ def tree_pipeline(inputs: lextree.TreeInputs, phones: pynini.SymbolTable | None,
         fst, arcs, potentials = made.pop("minimized", (None, None, None))
         if f is not fst or potentials is None or not lextree.log_total_diverges(inputs):
             return push_stage(f, details)
-        out = fst_of(lextree.push_arrays(arcs, potentials))
+        out = fst_of(push_arrays(arcs, potentials))
         details["semiring"] = "tropical"
         details["reason"] = ("the log-semiring total of the graph does not converge; "
                              "pushed in the tropical semiring")

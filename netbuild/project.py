@@ -40,6 +40,8 @@ Relative paths are taken relative to the directory holding the project file::
     max_memory = "16GiB"         # stop before a stage estimated to need more (size);
                                  # also caps determinize_max_memory; 0 (default): no limit
     final_optimize = true        # full graph: determinize and minimize H∘C∘L∘G
+    weight_quantum = 1e-4        # full graph: weights this close count as equal when
+                                 # minimizing (>= 0; 0: bit for bit)
     word_graph = "tree"          # "tree": det(L∘G) built directly; "compose": by OpenFst
 
     [hmm]
@@ -147,6 +149,7 @@ _SCHEMA: dict[str, dict[str, tuple[str, tuple[str, ...]]]] = {
         "determinize_timeout": ("seconds", ()),
         "max_memory": ("size", ()),
         "final_optimize": ("bool", ()),
+        "weight_quantum": ("scale", ()),
         "word_graph": ("str", ("tree", "compose")),
     },
     "hmm": {"transition_scale": ("scale", ())},
@@ -331,7 +334,7 @@ def _with_values(project: Project, values: dict[str, Any]) -> Project:
            "silence_probability": "silence_probability"}
     build = {"push_weights", "fst_type", "checks", "determinize_max_memory",
              "determinize_timeout", "final_optimize", "transition_scale", "max_memory",
-             "word_graph"}
+             "word_graph", "weight_quantum"}
     lex_opts = dataclasses.replace(
         o.lexicon, **{lex[k]: v for k, v in values.items() if k in lex})
     gram_opts = dataclasses.replace(

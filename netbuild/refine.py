@@ -22,21 +22,30 @@ signatures are kept per state, so a false merge needs both to collide. States wi
 several arcs of one code to one class count each arc (a state with a duplicated arc is
 not merged with its copy without the duplicate): the classes are then finer than
 bisimulation at worst, never coarser, so the result is always equivalent.
+
+Weights compare bit for bit by default. The full graph's model level asks for a
+quantum instead (`BuildOptions.weight_quantum`): after its weight push, equal futures
+often carry weights that differ in the last float32 bits, and comparing them exactly
+keeps such states apart.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from .bulk import combine_hash, hash_classes, mix_hash, sum_by_owner, weight_bits
+from .bulk import combine_hash, hash_classes, mix_hash, sum_by_owner, weight_keys
 from .io.fstfile import FstArrays
 
 __all__ = ["minimize_arrays", "quotient", "state_classes"]
 
 
-def state_classes(a: FstArrays) -> np.ndarray:
+def state_classes(a: FstArrays, quantum: float = 0.0) -> np.ndarray:
     """Returns the class id of every state of `a` (arcs grouped by state in state
     order): dense ids, states with the same encoded future share one.
+
+    With `quantum` > 0, weights (of arcs and final weights) are compared as their
+    nearest multiples of it (`bulk.weight_keys`) rather than bit for bit, so two
+    states whose weights differ only by float rounding noise fall into one class.
 
     A class of one state never splits again, so each round looks only at the states
     of larger classes and their arcs (on the 20k / 1M model-level graph: 2.18M states
@@ -52,9 +61,9 @@ def state_classes(a: FstArrays) -> np.ndarray:
     dst = a.dst.astype(np.int64)
     # (input, output) packed into one field: one hash fewer per arc
     labels = a.ilabel.astype(np.int64) << 32 | a.olabel.astype(np.int64)
-    wbits = weight_bits(a.weight)
+    wbits = weight_keys(a.weight, quantum)
     first_base = combine_hash(labels, wbits, seed=31)
-    final_bits = weight_bits(a.final_weights)
+    final_bits = weight_keys(a.final_weights, quantum)
     degree = np.bincount(src, minlength=n)
     cls = hash_classes(combine_hash(final_bits, degree, seed=35),
                        combine_hash(final_bits, degree, seed=36))
@@ -94,12 +103,14 @@ def state_classes(a: FstArrays) -> np.ndarray:
     return (np.cumsum(present) - 1)[cls]  # dense, in the order of the ids
 
 
-def minimize_arrays(a: FstArrays) -> FstArrays:
+def minimize_arrays(a: FstArrays, quantum: float = 0.0) -> FstArrays:
     """Returns the encoded minimization of `a` (arcs grouped by state in state order):
-    `quotient` by `state_classes`."""
+    `quotient` by `state_classes` (with `quantum`, see there). Each class keeps its
+    first state's exact weights, so with `quantum` > 0 a path's weight can move by less
+    than `quantum` for each arc and final weight of it that a merge replaced."""
     if a.num_states == 0:
         return a
-    return quotient(a, state_classes(a))[0]
+    return quotient(a, state_classes(a, quantum))[0]
 
 
 def quotient(a: FstArrays, cls: np.ndarray) -> tuple[FstArrays, np.ndarray]:

@@ -37,3 +37,13 @@ def test_reachable_matches_a_plain_search(case):
                 seen.add(b)
                 stack.append(b)
     assert got == sorted(seen)
+
+
+def test_weight_keys_round_to_the_quantum_and_keep_infinity_apart():
+    from netbuild.bulk import weight_bits, weight_keys
+
+    w = np.array([0.0, -0.0, 0.50004, 0.49996, 0.5003, np.inf], dtype=np.float32)
+    assert np.array_equal(weight_keys(w), weight_bits(w))
+    k = weight_keys(w, 1e-4)
+    assert k[0] == k[1] and k[2] == k[3] != k[4]
+    assert k[5] not in k[:5]

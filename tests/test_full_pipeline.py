@@ -212,3 +212,15 @@ def test_models_with_one_chain_become_one_label_at_the_model_level(tmp_path, mon
     # reference: OpenFst RandEquivalent (fst/randequivalent.h) on the two final graphs
     assert pynini.randequivalent(merged.full.fst, kinds.full.fst, npath=300, seed=7,
                                  max_length=60, delta=1e-3)
+
+
+def test_model_level_push_and_quantum_keep_the_graph_equivalent(tmp_path):
+    default = _build(tmp_path, "default")
+    exact = _build(tmp_path, "exact", weight_quantum=0.0)
+    stage = next(s for s in default.manifest["stages"] if s["name"] == "minimize-models")
+    assert stage["details"]["pushed"] is True
+    assert stage["details"]["weight_quantum"] == 1e-4
+    assert default.full.fst.num_states() <= exact.full.fst.num_states()
+    # reference: OpenFst RandEquivalent (fst/randequivalent.h), tropical
+    assert pynini.randequivalent(default.full.fst, exact.full.fst, npath=300, seed=11,
+                                 max_length=40, delta=1e-3)

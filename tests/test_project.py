@@ -221,7 +221,7 @@ def test_every_setting_has_an_override(inputs: Path):
               "push_weights": False, "fst_type": "const", "checks": False,
               "determinize_max_memory": 1000, "determinize_timeout": 5.0,
               "final_optimize": False, "transition_scale": 0.5, "max_memory": 2000,
-              "word_graph": "compose"}
+              "word_graph": "compose", "weight_quantum": 0.0}
     assert set(values) | {"lexicon", "lm", "phones", "context"} == set(SETTINGS)
     out = apply_overrides(None, **values)
     o = out.options
@@ -234,6 +234,7 @@ def test_every_setting_has_an_override(inputs: Path):
     assert (o.final_optimize, o.transition_scale) == (False, 0.5)
     assert o.max_memory == 2000
     assert o.word_graph == "compose"
+    assert o.weight_quantum == 0.0
 
 
 def test_override_errors_are_collected(tmp_path: Path):

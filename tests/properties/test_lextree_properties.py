@@ -19,6 +19,7 @@ from hypothesis import strategies as st
 from wordgraph_helpers import to_log
 
 from netbuild import lextree
+from netbuild.reweight import push_arrays
 from netbuild.builders.grammar import build_grammar
 from netbuild.builders.lexicon import build_lexicon
 from netbuild.io.lexicon import Lexicon, Pronunciation
@@ -110,7 +111,7 @@ def test_tree_minimization_and_push_match_openfst(case):
     finite = np.isfinite(dist)
     assert np.array_equal(finite, np.isfinite(potentials))
     assert np.allclose(dist[finite], potentials[finite], atol=1e-4)
-    pushed = _fst(lextree.push_arrays(arcs, potentials), lexicon, grammar)
+    pushed = _fst(push_arrays(arcs, potentials), lexicon, grammar)
     # reference: OpenFst push (fst/push.h), tropical semiring, toward the start state
     ref = pynini.push(mine, push_weights=True, reweight_type="to_initial")
     if mine.properties(pywrapfst.INITIAL_ACYCLIC, True) == pywrapfst.INITIAL_ACYCLIC:
