@@ -3,6 +3,9 @@
 - `distances_to_final(num_states, src, dst, weight, final)`: each state's cheapest
   (tropical) way to a final state, or None when there is a cycle of negative weight.
 - `push_arrays(arcs, potentials)`: the arcs reweighted toward the start state.
+- `push_output_labels(arcs)`: each state's output label that every way out of it
+  starts with, moved onto the arcs into it (toward the start), with room for a second
+  output label per arc.
 
 Both serve the word level (`netbuild.lextree` pushes det(L∘G) with distances worked
 out on G's states) and the model level of the full graph (`netbuild.full_pipeline`
@@ -18,7 +21,7 @@ import numpy as np
 
 from .io.fstfile import FstArrays
 
-__all__ = ["distances_to_final", "push_arrays"]
+__all__ = ["distances_to_final", "push_arrays", "push_output_labels"]
 
 
 def distances_to_final(num_states: int, src: np.ndarray, dst: np.ndarray,
@@ -100,3 +103,92 @@ def push_arrays(arcs: FstArrays, potentials: np.ndarray) -> FstArrays:
         arcs, num_states=num_states, start=s, final_weights=final.astype(np.float32),
         src=src.astype(np.int32), ilabel=il.astype(np.int32), olabel=ol.astype(np.int32),
         weight=w.astype(np.float32), dst=dst.astype(np.int32))
+
+
+_UNSETTLED = -1  # a state's output potential not yet bounded (the fixpoint's top)
+
+
+def output_label_potentials(a: FstArrays, max_passes: int = 5000) -> np.ndarray:
+    """Each state's output potential: the label every path from it to a final state
+    writes first, or 0 where the paths do not agree (or the state is final, or the
+    start state).
+
+    The greatest fixpoint of p(s) = the common first label of o(e) · p(dst(e)) over
+    s's arcs e, by passes in bulk from "any label" down; a potential only falls from
+    "any" to one label to 0, so the passes end (after at most two falls per state);
+    all 0 if they have not after `max_passes`.
+    """
+    n = a.num_states
+    p = np.full(n, _UNSETTLED, dtype=np.int64)
+    p[np.isfinite(a.final_weights)] = 0
+    if a.start >= 0:
+        p[a.start] = 0
+    order = None if _grouped(a.src) else np.argsort(a.src, kind="stable")
+    src = (a.src if order is None else a.src[order]).astype(np.int64)
+    dst = (a.dst if order is None else a.dst[order]).astype(np.int64)
+    out = (a.olabel if order is None else a.olabel[order]).astype(np.int64)
+    first_arc = np.searchsorted(src, np.arange(n + 1))
+    into = np.argsort(dst, kind="stable")  # arcs by destination, for the predecessors
+    first_into = np.searchsorted(dst[into], np.arange(n + 1))
+    never = np.iinfo(np.int64).max
+    # Each pass looks only at the states with an arc into a state whose potential the
+    # last pass changed (all unsettled states at first).
+    pending = np.flatnonzero((p == _UNSETTLED) & (first_arc[1:] > first_arc[:-1]))
+    for _ in range(max_passes):
+        if pending.shape[0] == 0:
+            break
+        arcs, starts = _segments(first_arc, pending)
+        first = np.where(out[arcs] != 0, out[arcs], p[dst[arcs]])  # written first
+        # (the unsettled value -1 is below every label, so the maximum skips it)
+        hi = np.maximum.reduceat(first, starts)
+        first[first == _UNSETTLED] = never
+        lo = np.minimum.reduceat(first, starts)
+        offer = np.where(hi == _UNSETTLED, _UNSETTLED, np.where(lo == hi, lo, 0))
+        old = p[pending]
+        new = np.where((old == _UNSETTLED) | (offer == old), offer,
+                       np.where(offer == _UNSETTLED, old, 0))
+        changed = pending[new != old]
+        p[pending] = new
+        if changed.shape[0] == 0:
+            break
+        preds = src[into[_segments(first_into, changed)[0]]]
+        flags = np.zeros(n, dtype=bool)
+        flags[preds] = True
+        flags[p == 0] = False  # (0 is final: nothing more to learn there)
+        pending = np.flatnonzero(flags)
+    else:  # not settled: an unsettled guess may be wrong, so push nothing
+        return np.zeros(n, dtype=np.int64)
+    p[p == _UNSETTLED] = 0  # (only on paths that reach no final state)
+    return p
+
+
+def push_output_labels(a: FstArrays) -> tuple[FstArrays, np.ndarray]:
+    """Moves each state's output potential (`output_label_potentials`) onto the arcs
+    that enter it, as a push of the output labels toward the start.
+
+    An arc s --o--> t becomes p(s)^-1 · o · p(t): its first label is returned in the
+    arrays, and a second one (0 for none) in the array returned beside them; that
+    happens only where o is a label, p(s) is 0 and p(t) is a label (a word whose end
+    has just been read followed at once by a word that every way on writes). Every
+    path writes the same string as before: p of the start state and of final states
+    is 0.
+    """
+    p = output_label_potentials(a)
+    o = a.olabel.astype(np.int64)
+    ps, pt = p[a.src], p[a.dst]
+    first = np.where(o == 0, np.where(ps == 0, pt, 0), np.where(ps == o, pt, o))
+    second = np.where((o != 0) & (ps == 0), pt, 0)
+    return dataclasses.replace(a, olabel=first.astype(np.int32)), second.astype(np.int32)
+
+
+def _segments(first: np.ndarray, states: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The arc indices ``first[s] .. first[s + 1] - 1`` of each of `states` (which
+    have arcs), concatenated, and where each state's run starts among them."""
+    lo, hi = first[states], first[states + 1]
+    count = hi - lo
+    starts = np.cumsum(count) - count
+    return np.repeat(lo - starts, count) + np.arange(int(count.sum())), starts
+
+
+def _grouped(src: np.ndarray) -> bool:
+    return bool(src.shape[0] < 2 or (src[1:] >= src[:-1]).all())

@@ -99,3 +99,83 @@ def test_unreachable_final_is_infinite():
     got = distances_to_final(3, np.array([0, 1]), np.array([1, 0]),
                              np.array([1.0, 1.0]), np.array([np.inf, np.inf, 0.0]))
     assert np.isinf(got[0]) and np.isinf(got[1]) and got[2] == 0.0
+
+
+def _complete_outputs(a: FstArrays, state: int, depth: int = 12) -> list[tuple[int, ...]]:
+    """Every output string (epsilons dropped) of a complete path from `state`, by plain
+    enumeration (the graphs here are acyclic)."""
+    found = []
+    if np.isfinite(a.final_weights[state]):
+        found.append(())
+    if depth == 0:
+        return found
+    for e in np.flatnonzero(a.src == state).tolist():
+        head = (int(a.olabel[e]),) if a.olabel[e] else ()
+        found += [head + rest for rest in _complete_outputs(a, int(a.dst[e]), depth - 1)]
+    return found
+
+
+@st.composite
+def acyclic_transducers(draw):
+    """Random connected DAGs (arcs go to higher states) with few output labels."""
+    ns = draw(st.integers(2, 8))
+    arcs = []
+    for s in range(ns - 1):
+        for _ in range(draw(st.integers(1, 3))):
+            arcs.append((s, draw(st.integers(1, 3)), draw(st.sampled_from([0, 0, 1, 2])),
+                         draw(st.sampled_from([0.0, 0.5])), draw(st.integers(s + 1, ns - 1))))
+    finals = [draw(st.sampled_from([np.inf, np.inf, 0.0])) for _ in range(ns - 1)] + [0.0]
+    src, il, ol, w, dst = (np.array(c) for c in zip(*arcs))
+    fst = arrays_to_fst(ns, 0, np.array(finals, dtype=np.float32), src.astype(np.int32),
+                        il.astype(np.int32), ol.astype(np.int32), w.astype(np.float32),
+                        dst.astype(np.int32))
+    fst.connect()
+    return fst
+
+
+def _with_pairs_split(a: FstArrays, second: np.ndarray) -> pynini.Fst:
+    """The FST of `a` with each arc that writes two labels made two arcs."""
+    pair = np.flatnonzero(second != 0)
+    k = pair.shape[0]
+    new = np.arange(a.num_states, a.num_states + k, dtype=np.int32)
+    dst = a.dst.copy()
+    dst[pair] = new
+    return arrays_to_fst(
+        a.num_states + k, a.start,
+        np.concatenate([a.final_weights, np.full(k, np.inf, np.float32)]),
+        np.concatenate([a.src, new]), np.concatenate([a.ilabel, np.zeros(k, np.int32)]),
+        np.concatenate([a.olabel, second[pair]]),
+        np.concatenate([a.weight, np.zeros(k, np.float32)]),
+        np.concatenate([dst, a.dst[pair]]))
+
+
+@settings(max_examples=300, deadline=None)
+@given(acyclic_transducers())
+def test_output_potentials_are_the_common_first_word_of_every_way_out(fst):
+    from netbuild.reweight import output_label_potentials
+
+    a = fst_to_arrays(fst)
+    if a.num_states == 0:
+        return
+    p = output_label_potentials(a)
+    for s in range(a.num_states):
+        outs = _complete_outputs(a, s)  # reference: enumeration of the paths
+        firsts = {o[0] if o else 0 for o in outs}
+        common = next(iter(firsts)) if len(firsts) == 1 else 0
+        expected = 0 if s == a.start else common
+        assert p[s] == expected, (s, outs)
+
+
+@settings(max_examples=300, deadline=None)
+@given(st.one_of(acyclic_transducers(), graphs()))
+def test_pushing_output_labels_keeps_the_relation(fst):
+    from netbuild.reweight import push_output_labels
+
+    a = fst_to_arrays(fst)
+    if a.num_states == 0:
+        return
+    pushed, second = push_output_labels(a)
+    assert np.array_equal(pushed.ilabel, a.ilabel) and np.array_equal(pushed.dst, a.dst)
+    # reference: OpenFst RandEquivalent (fst/randequivalent.h)
+    assert pynini.randequivalent(_with_pairs_split(pushed, second), fst, npath=50,
+                                 seed=9, max_length=25, delta=1e-5)

@@ -51,7 +51,8 @@ import pynini
 import pywrapfst
 
 from ..bulk import (combine_hash, distinct_inverse, hash_classes, stable_order, sum_by_owner,
-                    unique_sorted, weight_bits)
+                    unique_sorted, weight_keys)
+from ..errors import StageError
 from ..io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, share_arrays
 from ..symbols import is_auxiliary
 
@@ -322,10 +323,17 @@ def code_classes(chains: ModelChains) -> np.ndarray | None:
     return rep
 
 
-def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
+def trie_arrays(a: FstArrays, chains: ModelChains,
+                pair_labels: tuple[int, np.ndarray] | None = None,
+                quantum: float = 0.0) -> FstArrays | None:
     """Returns the kinds-level graph of the model-level graph `a` (arcs grouped by
     state, model labels unique per state, markers already epsilon): each state's model
     arcs expanded into the trie of their kind chains, equal trie nodes merged.
+
+    `pair_labels` ``(base, pairs)``: output labels ``base + i`` of `a` stand for the two
+    labels ``pairs[i]`` written one after the other (`split_pair_labels`). `quantum`:
+    trie nodes' weights count as equal when they round to the same multiple of it
+    (`bulk.weight_keys`; 0: bit for bit).
 
     The chains must be a prefix code (`code_classes` is not None) and `a`'s equal-chain
     models one label. States 0 .. ``a.num_states - 1`` are `a`'s, then the trie nodes;
@@ -406,7 +414,49 @@ def trie_arrays(a: FstArrays, chains: ModelChains) -> FstArrays | None:
         columns.append(np.concatenate(parts[i]).astype(dtype, copy=False))
         parts[i] = []  # (each column's pieces go as soon as it is joined)
     del parts
-    return _merge_trie_nodes(q, next_id, depth_cuts, a, columns, chains)
+    if pair_labels is not None:
+        next_id = split_pair_labels(columns, q, next_id, depth_cuts, *pair_labels)
+    return _merge_trie_nodes(q, next_id, depth_cuts, a, columns, chains, quantum)
+
+
+def split_pair_labels(columns: list[np.ndarray], q: int, total: int,
+                      depth_cuts: list[int], base: int, pairs: np.ndarray) -> int:
+    """Writes each label pair (output ``base + i``: ``pairs[i]``) of the trie's arcs
+    as its two labels; returns the new number of states.
+
+    The pair's first label stays on its arc. Its second goes onto the arcs leaving
+    the trie node the arc enters (before merging, a trie node has one arc in; the
+    pair was written there because every chain below it writes it, so the arcs below
+    write nothing yet), or, where the arc enters a junction, onto a new epsilon-input
+    arc from a new state, which becomes the trie's deepest level (its arcs lead to
+    junctions). `columns` (src, ilabel, olabel, weight, dst) are changed in place.
+    """
+    src, ilabel, olabel, weight, dst = columns
+    idx = np.flatnonzero(olabel >= base)
+    if idx.shape[0] == 0:
+        return total
+    pair = pairs[olabel[idx] - base]
+    olabel[idx] = pair[:, 0]
+    into_node = dst[idx] >= q
+    second_of = np.zeros(total, dtype=np.int32)
+    second_of[dst[idx[into_node]]] = pair[into_node, 1]
+    below = np.flatnonzero(second_of[src] != 0)
+    if (olabel[below] != 0).any():
+        raise StageError("expand-hmm", "a word pair sits above a trie node that writes "
+                         "a word of its own", "this is a netbuild bug")
+    olabel[below] = second_of[src[below]]
+    rest = idx[~into_node]
+    k = rest.shape[0]
+    if k == 0:
+        return total
+    new_states = np.arange(total, total + k, dtype=np.int32)
+    extra = (new_states, np.zeros(k, np.int32), pair[~into_node, 1].astype(np.int32),
+             np.zeros(k, np.float32), dst[rest].copy())
+    dst[rest] = new_states
+    for i, column in enumerate(extra):
+        columns[i] = np.concatenate([columns[i], column.astype(columns[i].dtype)])
+    depth_cuts.append(total + k)
+    return total + k
 
 
 def _append(parts: list[list[np.ndarray]], *columns: np.ndarray) -> None:
@@ -420,7 +470,8 @@ def _difference(minuend: np.ndarray, subtrahend: np.ndarray) -> np.ndarray:
 
 
 def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
-                      columns: list[np.ndarray], chains: ModelChains) -> FstArrays:
+                      columns: list[np.ndarray], chains: ModelChains,
+                      quantum: float = 0.0) -> FstArrays:
     """Merges trie nodes with equal futures, deepest first (a node's arcs lead one level
     deeper or to a junction), and returns the arrays grouped by state, sorted by label.
     Nodes of depth d are the ids ``depth_cuts[d - 1] .. depth_cuts[d] - 1``. `columns`
@@ -441,7 +492,7 @@ def _merge_trie_nodes(q: int, total: int, depth_cuts: list[int], a: FstArrays,
         del by_owner
         degree = np.bincount(owner, minlength=hi - lo)
         labels = ilabel[sel].astype(np.int64) << 32 | olabel[sel]  # one hashed field
-        wbits = weight_bits(weight[sel])
+        wbits = weight_keys(weight[sel], quantum)
         targets = cls[dst[sel]]
         signatures = []
         for seed in (21, 22):  # two independent 64-bit signatures per node
