@@ -18,11 +18,14 @@ models' kind chains a prefix code, `model_level_plan`). Stages:
    with equal chains become one label.
 2. ``determinize-models``: guarded determinization of C∘LG over models.
 3. ``remove-markers``: markers made epsilon, on the arrays.
-4. ``minimize-models``: the weights pushed toward the start (tropical,
-   `netbuild.reweight`), then encoded minimization by partition refinement with
-   weights compared to within ``opts.weight_quantum`` (`netbuild.refine`).
+4. ``minimize-models``: the output labels pushed toward the start (arcs that then
+   write two words carry a pair label, `_labels_pushed`), the weights pushed
+   toward the start (tropical; both `netbuild.reweight`), then encoded
+   minimization by partition refinement with weights compared to within
+   ``opts.weight_quantum`` (`netbuild.refine`).
 5. ``expand-hmm``: each state's model arcs expanded into the trie of their kind chains,
-   equal trie nodes merged (`netbuild.builders.hmm_expand.trie_arrays`); this is what
+   pair labels written as their two words, equal trie nodes merged
+   (`netbuild.builders.hmm_expand.trie_arrays`); this is what
    determinizing and minimizing H∘CLG over kinds gives (the argument is in that
    module), on a graph a third of the size. 20k / 1M: the three OpenFst stages over
    kinds took 96 + 14 + 85 s, these four 34 + 2 + 8 + 14 s (docs/performance.md).

@@ -19,6 +19,7 @@ import dataclasses
 
 import numpy as np
 
+from .bulk import stable_order
 from .io.fstfile import FstArrays
 
 __all__ = ["distances_to_final", "push_arrays", "push_output_labels"]
@@ -41,7 +42,7 @@ def distances_to_final(num_states: int, src: np.ndarray, dst: np.ndarray,
     v = np.asarray(final, dtype=np.float64).copy()
     if len(src) == 0:
         return v
-    into = np.argsort(dst, kind="stable")  # the arcs grouped by destination
+    into = stable_order(dst)  # the arcs grouped by destination
     first_into = np.searchsorted(dst[into], np.arange(num_states + 1))
     changed = np.flatnonzero(np.isfinite(v))
     for _ in range(max_passes):
@@ -128,7 +129,7 @@ def output_label_potentials(a: FstArrays, max_passes: int = 5000) -> np.ndarray:
     dst = (a.dst if order is None else a.dst[order]).astype(np.int64)
     out = (a.olabel if order is None else a.olabel[order]).astype(np.int64)
     first_arc = np.searchsorted(src, np.arange(n + 1))
-    into = np.argsort(dst, kind="stable")  # arcs by destination, for the predecessors
+    into = stable_order(dst)  # arcs by destination, for the predecessors
     first_into = np.searchsorted(dst[into], np.arange(n + 1))
     never = np.iinfo(np.int64).max
     # Each pass looks only at the states with an arc into a state whose potential the

@@ -138,3 +138,52 @@ def test_trie_shares_prefixes_and_places_weights_and_words_early():
     # graph's states, deepest first: 2 is the node after (1, 2), 3 the one after 1.)
     assert arcs == [(0, 1, 1, 2.0, 3), (2, 3, 0, 0.0, 1), (2, 4, 0, 1.0, 1),
                     (3, 2, 0, 0.0, 2)]
+
+
+@settings(max_examples=300, deadline=None)
+@given(model_graphs())
+def test_trie_writes_word_pairs_as_two_words(case):
+    """After the model-level push of output labels some arcs write two words (a pair
+    label); the trie writes them as two and keeps H∘graph's relation."""
+    from netbuild.full_pipeline import _labels_pushed
+
+    graph, chains, _ = case
+    details: dict = {}
+    pushed, pairs = _labels_pushed(fst_to_arrays(graph), details)
+    got_arrays = trie_arrays(minimize_arrays(pushed), chains, pairs)
+    assert got_arrays.olabel.max(initial=0) < WORDS.available_key()  # no pair is left
+    got = fst_of_arrays(got_arrays)
+    # reference: OpenFst RandEquivalent (fst/randequivalent.h)
+    assert pynini.randequivalent(got, expand_models(graph, chains), npath=60, seed=2,
+                                 max_length=30, delta=1e-4)
+
+
+def test_second_word_goes_one_arc_down_the_chain_or_onto_a_new_arc():
+    # m1 = (1, 2, 3), m2 = (1, 2, 4), m3 = (5, 6).
+    chains = _chains_of([(1, 2, 3), (1, 2, 4), (5, 6)])
+    # 0 --m3:w1--> 1 --ε:w2--> 2 (final); 0 --m1:w1--> 3 --ε:w2--> 2;
+    # 0 --m2:w3--> 2. After the push, m3 and m1 write the pair (w1, w2).
+    graph = arrays_to_fst(
+        4, 0, np.array([np.inf, np.inf, 0.0, np.inf], dtype=np.float32),
+        np.array([0, 0, 0, 1, 3], np.int32), np.array([1, 2, 3, 0, 0], np.int32),
+        np.array([1, 3, 1, 2, 2], np.int32), np.zeros(5, np.float32),
+        np.array([3, 2, 1, 2, 2], np.int32), osymbols=WORDS)
+    from netbuild.full_pipeline import _labels_pushed
+
+    details: dict = {}
+    pushed, pairs = _labels_pushed(fst_to_arrays(graph), details)
+    assert details["arcs_writing_two_words"] == 2
+    t = trie_arrays(pushed, chains, pairs)
+    arcs = list(zip(t.src.tolist(), t.ilabel.tolist(), t.olabel.tolist(), t.dst.tolist()))
+    # m3's chain (5, 6) is alone below state 0: w1 on kind 5, w2 one arc down on 6.
+    k5 = next(a for a in arcs if a[0] == 0 and a[1] == 5)
+    assert k5[2] == 1
+    assert next(a for a in arcs if a[0] == k5[3])[1:3] == (6, 2)
+    # m1 shares (1, 2) with m2 (which writes w3), so its words come on its leaf (kind
+    # 3): w1 there, then w2 on a new epsilon arc into state 3.
+    k3 = next(a for a in arcs if a[1] == 3)
+    assert k3[2] == 1
+    assert [a[1:3] for a in arcs if a[0] == k3[3]] == [(0, 2)]
+    # reference: OpenFst RandEquivalent (fst/randequivalent.h)
+    assert pynini.randequivalent(fst_of_arrays(t), expand_models(graph, chains), npath=60,
+                                 seed=2, max_length=30, delta=1e-4)
