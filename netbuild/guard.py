@@ -177,7 +177,14 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
         isyms, osyms = (None if t is None else t.copy()
                         for t in (ifst.input_symbols(), ifst.output_symbols()))
         arc_type = ifst.arc_type()
-        ifst.write(ipath)
+        # An ArrayFst is written as a const file: OpenFst reads that layout about four
+        # times faster than a vector file (0.56 s against 2.1 s for the 20k / 1M C∘LG).
+        from .io.fstfile import ArrayFst, write_arrays
+
+        if isinstance(ifst, ArrayFst):
+            write_arrays(ifst.arrays, ipath, "const")
+        else:
+            ifst.write(ipath)
         if handed:
             # Imported here: the child, which runs this module, never needs numpy.
             from .io.fstfile import forget_shared
@@ -271,8 +278,8 @@ def _child(argv: list[str] | None = None) -> int:
     resource.setrlimit(resource.RLIMIT_AS, (args.max_memory, args.max_memory))
     started = time.monotonic()
     try:
-        ifst = pynini.Fst.read(args.ifile)
-        ofst = pynini.determinize(ifst, det_type=args.det_type)
+        ifst = pywrapfst.Fst.read(args.ifile)  # (vector or const, as written)
+        ofst = pywrapfst.determinize(ifst, det_type=args.det_type)
         del ifst
         num_states = ofst.num_states()
         if args.const:
