@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pynini
 
 from netbuild.io.context_map import ContextMap, HmmState, Model
@@ -25,6 +26,19 @@ def tracked_copy(fst: pynini.Fst) -> Tracked:
     out.set_input_symbols(fst.input_symbols())
     out.set_output_symbols(fst.output_symbols())
     return out
+
+
+def connected_fst(num_states: int, arcs: list[tuple], finals: list[float],
+                  **tables) -> pynini.Fst:
+    """The connected FST with start 0, `arcs` as (src, ilabel, olabel, weight, dst)
+    tuples and `finals` per state (inf: not final); `tables`: isymbols/osymbols."""
+    cols = [np.array(c) for c in zip(*arcs)] if arcs else [np.zeros(0)] * 5
+    src, il, ol, w, dst = cols
+    fst = arrays_to_fst(num_states, 0, np.array(finals, dtype=np.float32),
+                        src.astype(np.int32), il.astype(np.int32), ol.astype(np.int32),
+                        w.astype(np.float32), dst.astype(np.int32), **tables)
+    fst.connect()
+    return fst
 
 
 def fst_of_arrays(a: FstArrays) -> pynini.Fst:

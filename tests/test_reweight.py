@@ -11,7 +11,7 @@ import pynini
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from fst_helpers import fst_of_arrays
+from fst_helpers import connected_fst, fst_of_arrays
 
 from netbuild.io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays
 from netbuild.reweight import distances_to_final, push_arrays
@@ -28,12 +28,7 @@ def graphs(draw):
                          draw(st.sampled_from([0.0, 0.25, 1.5, 3.0])),
                          draw(st.integers(0, ns - 1))))
     finals = [draw(st.sampled_from([np.inf, np.inf, 0.0, 0.75])) for _ in range(ns)]
-    cols = [np.array(c) for c in zip(*arcs)] if arcs else [np.zeros(0)] * 5
-    src, il, ol, w, dst = cols
-    fst = arrays_to_fst(ns, 0, np.array(finals, dtype=np.float32), src.astype(np.int32),
-                        il.astype(np.int32), ol.astype(np.int32), w.astype(np.float32),
-                        dst.astype(np.int32))
-    fst.connect()
+    fst = connected_fst(ns, arcs, finals)
     return fst
 
 

@@ -17,7 +17,8 @@ import numpy as np
 import pynini
 from hypothesis import assume, given, settings
 from hypothesis import strategies as st
-from fst_helpers import fst_of_arrays, monophone_map, openfst_encoded_minimum
+from fst_helpers import (connected_fst, fst_of_arrays, monophone_map,
+                         openfst_encoded_minimum)
 
 from netbuild.builders.hmm import build_hmm, make_model_symbols
 from netbuild.builders.hmm_expand import (ModelChains, code_classes, expand_models,
@@ -90,12 +91,7 @@ def model_graphs(draw):
             arcs.append((s, lab, draw(st.integers(0, 3)), float(draw(st.integers(0, 3))),
                          draw(st.integers(0, ns - 1))))
     finals = [draw(st.sampled_from([np.inf, 0.0, 1.0])) for _ in range(ns)]
-    cols = [np.array(c) for c in zip(*arcs)] if arcs else [np.zeros(0)] * 5
-    src, il, ol, w, dst = cols
-    fst = arrays_to_fst(ns, 0, np.array(finals, dtype=np.float32), src.astype(np.int32),
-                        il.astype(np.int32), ol.astype(np.int32), w.astype(np.float32),
-                        dst.astype(np.int32), isymbols=models, osymbols=WORDS)
-    fst.connect()
+    fst = connected_fst(ns, arcs, finals, isymbols=models, osymbols=WORDS)
     assume(fst.num_states() > 0)
     return fst, chains, uniform
 
