@@ -52,7 +52,6 @@ import pywrapfst
 
 from ..bulk import (combine_hash, distinct_inverse, hash_classes, stable_order, sum_by_owner,
                     unique_sorted, weight_keys)
-from ..errors import StageError
 from ..io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, share_arrays
 from ..symbols import is_auxiliary
 
@@ -331,14 +330,18 @@ def trie_arrays(a: FstArrays, chains: ModelChains,
     arcs expanded into the trie of their kind chains, equal trie nodes merged.
 
     `pair_labels` ``(base, pairs)``: output labels ``base + i`` of `a` stand for the two
-    labels ``pairs[i]`` written one after the other (`split_pair_labels`). `quantum`:
-    trie nodes' weights count as equal when they round to the same multiple of it
+    labels ``pairs[i]`` written one after the other. Each of an arc's labels goes onto
+    the first trie arc below which every chain writes it, the second at least one arc
+    below the first; where a chain ends before its second label is written, a new
+    state after its last arc writes it on an epsilon-input arc. `quantum`: trie nodes'
+    weights count as equal when they round to the same multiple of it
     (`bulk.weight_keys`; 0: bit for bit).
 
     The chains must be a prefix code (`code_classes` is not None) and `a`'s equal-chain
-    models one label. States 0 .. ``a.num_states - 1`` are `a`'s, then the trie nodes;
-    arcs are grouped by state and sorted by input label. None when `a` has a label
-    that is neither epsilon nor a model of `chains`.
+    models one label. States 0 .. ``a.num_states - 1`` are `a`'s, then the trie nodes
+    (then the states that write a second label); arcs are grouped by state and sorted
+    by input label. None when `a` has a label that is neither epsilon nor a model of
+    `chains`.
     """
     q = a.num_states
     il = a.ilabel
@@ -346,6 +349,7 @@ def trie_arrays(a: FstArrays, chains: ModelChains,
     n = chains.length[lab].astype(np.int32)
     if not ((il == 0) | (n > 0)).all():
         return None
+    first_out, second_out = _two_labels(a.olabel, pair_labels)
     model = np.flatnonzero(n > 0)
     plain = np.flatnonzero(n == 0)  # epsilon arcs stay as they are
     # (int32 and float32 throughout: the 20k / 1M graph has 4.7M model arcs, and the
@@ -354,12 +358,16 @@ def trie_arrays(a: FstArrays, chains: ModelChains,
     m_n = n[model]
     del lab, n
     m_weight = a.weight[model]
-    m_out = a.olabel[model]
+    m_out = first_out[model]
+    m_out2 = second_out[model]
     parent = a.src[model].astype(np.int32)
     parent_weight = np.zeros(model.shape[0], dtype=np.float32)  # what the path carries
-    parent_uniform = np.zeros(model.shape[0], dtype=bool)  # its word already written
+    written = np.zeros(model.shape[0], dtype=bool)  # its first word written above
+    written2 = np.zeros(model.shape[0], dtype=bool)  # its second word written above
+    # Per arc of `parts`, in order: the second word it still has to write (0: none).
+    late: list[np.ndarray] = [second_out[plain]]
     # The arcs, collected column by column: source, input, output, weight, destination.
-    parts: list[list[np.ndarray]] = [[a.src[plain]], [il[plain]], [a.olabel[plain]],
+    parts: list[list[np.ndarray]] = [[a.src[plain]], [il[plain]], [first_out[plain]],
                                      [a.weight[plain]], [a.dst[plain]]]
     del plain
     depth_cuts = [q]
@@ -369,11 +377,13 @@ def trie_arrays(a: FstArrays, chains: ModelChains,
         kind = np.zeros(model.shape[0], dtype=np.int32)
         kind[going] = chains.kinds[m_start[going] + j]
         leaf = going[m_n[going] == j + 1]
-        _append(parts, parent[leaf], kind[leaf],
-                np.where(parent_uniform[leaf], 0, m_out[leaf]),
+        out = np.where(~written[leaf], m_out[leaf], np.where(written2[leaf], 0,
+                                                              m_out2[leaf]))
+        late.append(np.where(written[leaf], 0, m_out2[leaf]))
+        _append(parts, parent[leaf], kind[leaf], out,
                 _difference(m_weight[leaf], parent_weight[leaf]), a.dst[model[leaf]])
         inner = going[m_n[going] > j + 1]
-        del going, leaf
+        del going, leaf, out
         if inner.shape[0] == 0:
             continue
         key = parent[inner].astype(np.int64) << 32 | kind[inner]
@@ -391,67 +401,74 @@ def trie_arrays(a: FstArrays, chains: ModelChains,
         lowest = np.minimum.reduceat(m_weight[members], first)
         out_min = np.minimum.reduceat(m_out[members], first)
         uniform = out_min == np.maximum.reduceat(m_out[members], first)
+        out2_min = np.minimum.reduceat(m_out2[members], first)
+        uniform2 = out2_min == np.maximum.reduceat(m_out2[members], first)
         above_weight = parent_weight[members[first]]
-        above_uniform = parent_uniform[members[first]]
+        above = written[members[first]]
+        above2 = written2[members[first]]
         count = first.shape[0]
         node_key = skey[first]
         del skey, members, first
+        # The first word where the chains below agree on it; the second where they
+        # agree on it too and the first is on an arc above this one.
+        writes2 = above & ~above2 & uniform2
+        node_out = np.where(uniform & ~above, out_min, np.where(writes2, out2_min, 0))
         _append(parts, (node_key >> 32).astype(np.int32),
-                (node_key & 0xFFFFFFFF).astype(np.int32),
-                np.where(uniform & ~above_uniform, out_min, 0).astype(np.int32),
+                (node_key & 0xFFFFFFFF).astype(np.int32), node_out.astype(np.int32),
                 _difference(lowest, above_weight),
                 np.arange(next_id, next_id + count, dtype=np.int32))
-        del node_key
+        late.append(np.zeros(count, dtype=np.int32))
+        del node_key, node_out
         parent[inner] = next_id + node_of
         parent_weight[inner] = lowest[node_of]
-        parent_uniform[inner] = (uniform | above_uniform)[node_of]
+        written[inner] = (uniform | above)[node_of]
+        written2[inner] = (above2 | writes2)[node_of]
         del inner, node_of
         next_id += count
         depth_cuts.append(next_id)
-    del parent, parent_weight, parent_uniform, m_start, m_n, m_weight, m_out, model
+    del parent, parent_weight, written, written2, m_start, m_n, m_weight, m_out, m_out2
+    del model
     columns = []
     for i, dtype in enumerate((np.int32, np.int32, np.int32, np.float32, np.int32)):
         columns.append(np.concatenate(parts[i]).astype(dtype, copy=False))
         parts[i] = []  # (each column's pieces go as soon as it is joined)
     del parts
-    if pair_labels is not None:
-        next_id = split_pair_labels(columns, q, next_id, depth_cuts, *pair_labels)
+    second = np.concatenate(late).astype(np.int32)
+    del late
+    next_id = _second_word_states(columns, second, next_id, depth_cuts)
     return _merge_trie_nodes(q, next_id, depth_cuts, a, columns, chains, quantum)
 
 
-def split_pair_labels(columns: list[np.ndarray], q: int, total: int,
-                      depth_cuts: list[int], base: int, pairs: np.ndarray) -> int:
-    """Writes each label pair (output ``base + i``: ``pairs[i]``) of the trie's arcs
-    as its two labels; returns the new number of states.
+def _two_labels(olabel: np.ndarray, pair_labels: tuple[int, np.ndarray] | None
+                ) -> tuple[np.ndarray, np.ndarray]:
+    """Each arc's first and second output label (0: none) from `olabel`, where labels
+    ``base + i`` stand for ``pairs[i]``."""
+    if pair_labels is None:
+        return olabel, np.zeros(olabel.shape[0], dtype=np.int32)
+    base, pairs = pair_labels
+    is_pair = olabel >= base
+    first = olabel.copy()
+    second = np.zeros(olabel.shape[0], dtype=np.int32)
+    pair = pairs[olabel[is_pair] - base]
+    first[is_pair] = pair[:, 0]
+    second[is_pair] = pair[:, 1]
+    return first, second
 
-    The pair's first label stays on its arc. Its second goes onto the arcs leaving
-    the trie node the arc enters (before merging, a trie node has one arc in; the
-    pair was written there because every chain below it writes it, so the arcs below
-    write nothing yet), or, where the arc enters a junction, onto a new epsilon-input
-    arc from a new state, which becomes the trie's deepest level (its arcs lead to
-    junctions). `columns` (src, ilabel, olabel, weight, dst) are changed in place.
-    """
-    src, ilabel, olabel, weight, dst = columns
-    idx = np.flatnonzero(olabel >= base)
-    if idx.shape[0] == 0:
-        return total
-    pair = pairs[olabel[idx] - base]
-    olabel[idx] = pair[:, 0]
-    into_node = dst[idx] >= q
-    second_of = np.zeros(total, dtype=np.int32)
-    second_of[dst[idx[into_node]]] = pair[into_node, 1]
-    below = np.flatnonzero(second_of[src] != 0)
-    if (olabel[below] != 0).any():
-        raise StageError("expand-hmm", "a word pair sits above a trie node that writes "
-                         "a word of its own", "this is a netbuild bug")
-    olabel[below] = second_of[src[below]]
-    rest = idx[~into_node]
+
+def _second_word_states(columns: list[np.ndarray], second: np.ndarray, total: int,
+                        depth_cuts: list[int]) -> int:
+    """For each arc with a `second` word not yet written (arcs in `columns`' order):
+    the arc goes to a new state instead, whose epsilon-input arc writes the word and
+    goes on to the arc's old destination. The new states are the trie's deepest level
+    (their arcs lead to junctions). Returns the new number of states."""
+    rest = np.flatnonzero(second != 0)
     k = rest.shape[0]
     if k == 0:
         return total
     new_states = np.arange(total, total + k, dtype=np.int32)
-    extra = (new_states, np.zeros(k, np.int32), pair[~into_node, 1].astype(np.int32),
-             np.zeros(k, np.float32), dst[rest].copy())
+    dst = columns[4]
+    extra = (new_states, np.zeros(k, np.int32), second[rest], np.zeros(k, np.float32),
+             dst[rest].copy())
     dst[rest] = new_states
     for i, column in enumerate(extra):
         columns[i] = np.concatenate([columns[i], column.astype(columns[i].dtype)])
