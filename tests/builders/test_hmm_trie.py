@@ -136,8 +136,31 @@ def test_trie_shares_prefixes_and_places_weights_and_words_early():
                     (3, 2, 0, 0.0, 2)]
 
 
+@st.composite
+def pair_prone_graphs(draw):
+    """`model_graphs` with a word written after some model arcs that write a word:
+    the arc then goes to a new state whose one epsilon-input arc writes the second
+    word (what a word written on its end marker looks like once markers are
+    epsilon), so the push of output labels makes word pairs."""
+    graph, chains, uniform = draw(model_graphs())
+    a = fst_to_arrays(graph)
+    chosen = [i for i in range(len(a.src))
+              if a.ilabel[i] and a.olabel[i] and draw(st.booleans())]
+    n = a.num_states
+    arcs = list(zip(a.src.tolist(), a.ilabel.tolist(), a.olabel.tolist(),
+                    a.weight.tolist(), a.dst.tolist()))
+    for k, i in enumerate(chosen):
+        s, il, ol, w, d = arcs[i]
+        arcs[i] = (s, il, ol, w, n + k)
+        arcs.append((n + k, 0, draw(st.integers(1, 3)), 0.0, d))
+    finals = a.final_weights.tolist() + [np.inf] * len(chosen)
+    fst = connected_fst(n + len(chosen), arcs, finals, isymbols=graph.input_symbols(),
+                        osymbols=WORDS)
+    return fst, chains, uniform
+
+
 @settings(max_examples=300, deadline=None)
-@given(model_graphs())
+@given(st.one_of(model_graphs(), pair_prone_graphs()))
 def test_trie_writes_word_pairs_as_two_words(case):
     """After the model-level push of output labels some arcs write two words (a pair
     label); the trie writes them as two and keeps H∘graph's relation."""
