@@ -95,7 +95,7 @@ from .builders.hmm import (KindTable, add_self_loops, build_hmm, emission_symbol
                            make_model_symbols, self_loop_arrays)
 from .builders.context_compose import compose_context_arrays
 from .builders.hmm_expand import (ModelChains, code_classes, expand_arrays, expanded_fst,
-                                  model_chains, trie_arrays)
+                                  model_chains, pair_labels, trie_arrays)
 from .errors import EmptyCompositionError, StageError
 from .guard import FstHandoff
 from .io.context_map import ContextMap
@@ -390,11 +390,9 @@ def full_pipeline(cfst: pynini.Fst, hfst: pynini.Fst, kind_table: KindTable,
 
 def _labels_pushed(a: FstArrays, details: dict
                    ) -> tuple[FstArrays, tuple[int, np.ndarray] | None]:
-    """`a` with its output labels pushed toward the start (`reweight.push_output_labels`)
-    and the arcs that then write two words labelled with pair labels, and the pairs
-    ``(base, pairs)`` (None when there is none): label ``base + i`` writes the words
-    ``pairs[i]``, and the output table is extended with a symbol ``"w1 w2"`` for each
-    (a space is in no word), so the stage's checks read valid labels.
+    """`a` with its output labels pushed toward the start (`reweight.push_output_labels`),
+    the arcs that then write two words carrying pair labels (`hmm_expand.pair_labels`),
+    and the pairs (None when there is none).
 
     Why: a word whose end is known only on a marker arc (a homophone or a prefix of
     another word) gets its label there, right after the model arc that wrote the word
@@ -404,23 +402,8 @@ def _labels_pushed(a: FstArrays, details: dict
     the final graph has 15,519,867 arcs instead of 15,589,843.
     """
     pushed, second = push_output_labels(a)
-    has_pair = np.flatnonzero(second != 0)
-    details["arcs_writing_two_words"] = int(has_pair.shape[0])
-    if has_pair.shape[0] == 0:
-        return pushed, None
-    table = a.osymbols
-    base = max(int(pushed.olabel.max()), int(second.max()),
-               table.available_key() - 1 if table is not None else 0) + 1
-    first = pushed.olabel[has_pair].astype(np.int64)
-    pairs, inverse = np.unique(np.stack([first, second[has_pair].astype(np.int64)], axis=1),
-                               axis=0, return_inverse=True)
-    olabel = pushed.olabel.copy()
-    olabel[has_pair] = base + inverse.reshape(-1)
-    if table is not None:
-        table = table.copy()
-        for i, (w1, w2) in enumerate(pairs.tolist()):
-            table.add_symbol(f"{table.find(w1)} {table.find(w2)}", base + i)
-    return dataclasses.replace(pushed, olabel=olabel, osymbols=table), (base, pairs)
+    details["arcs_writing_two_words"] = int(np.count_nonzero(second))
+    return pair_labels(pushed, second)
 
 
 def _pushed(a: FstArrays, details: dict) -> FstArrays:

@@ -7,6 +7,10 @@
   label of CLG is not one H reads: `expand_arrays`, then `expanded_fst`.
 - `expand_arrays(arrays, chains)`: the arrays of H∘CLG from CLG's, in bulk.
 - `expanded_fst(arrays, connected)`: the FST of those arrays, trimmed if need be.
+- `trie_arrays(arrays, chains, pair_labels, quantum)`: a model-level graph expanded
+  into per-state tries of kind chains, equal trie nodes merged (expand-hmm).
+- `pair_labels(arrays, second)`: arcs that write two words relabelled with pair
+  labels, which `trie_arrays` writes as two.
 
 Why composition with H is a substitution. H (see `netbuild.builders.hmm`) has one hub,
 state 0, which is its start and only final state; model ``m`` with ``n`` emitting
@@ -55,7 +59,8 @@ from ..bulk import (combine_hash, distinct_inverse, hash_classes, stable_order, 
 from ..io.fstfile import FstArrays, arrays_to_fst, fst_to_arrays, share_arrays
 from ..symbols import is_auxiliary
 
-__all__ = ["ModelChains", "expand_arrays", "expand_models", "expanded_fst", "model_chains"]
+__all__ = ["ModelChains", "expand_arrays", "expand_models", "expanded_fst", "model_chains",
+           "pair_labels", "trie_arrays"]
 
 _CONNECTED = pywrapfst.ACCESSIBLE | pywrapfst.COACCESSIBLE
 
@@ -437,6 +442,31 @@ def trie_arrays(a: FstArrays, chains: ModelChains,
     del late
     next_id = _second_word_states(columns, second, next_id, depth_cuts)
     return _merge_trie_nodes(q, next_id, depth_cuts, a, columns, chains, quantum)
+
+
+def pair_labels(a: FstArrays, second: np.ndarray
+                ) -> tuple[FstArrays, tuple[int, np.ndarray] | None]:
+    """`a` with each arc that has a `second` output label (0: none) relabelled with a
+    pair label, and the pairs ``(base, pairs)`` (None when no arc has one): label
+    ``base + i`` writes ``pairs[i]`` (first label, second label), which `trie_arrays`
+    writes as two. The output table, if any, is extended with a symbol ``"w1 w2"`` for
+    each pair (no word has a space), so the graph's labels stay in its table."""
+    has_pair = np.flatnonzero(second != 0)
+    if has_pair.shape[0] == 0:
+        return a, None
+    table = a.osymbols
+    base = max(int(a.olabel.max()), int(second.max()),
+               table.available_key() - 1 if table is not None else 0) + 1
+    both = np.stack([a.olabel[has_pair].astype(np.int64),
+                     second[has_pair].astype(np.int64)], axis=1)
+    pairs, inverse = np.unique(both, axis=0, return_inverse=True)
+    olabel = a.olabel.copy()
+    olabel[has_pair] = base + inverse.reshape(-1)
+    if table is not None:
+        table = table.copy()
+        for i, (w1, w2) in enumerate(pairs.tolist()):
+            table.add_symbol(f"{table.find(w1)} {table.find(w2)}", base + i)
+    return dataclasses.replace(a, olabel=olabel, osymbols=table), (base, pairs)
 
 
 def _two_labels(olabel: np.ndarray, pair_labels: tuple[int, np.ndarray] | None

@@ -22,10 +22,11 @@ from fst_helpers import (connected_fst, fst_of_arrays, monophone_map,
 
 from netbuild.builders.hmm import build_hmm, make_model_symbols
 from netbuild.builders.hmm_expand import (ModelChains, code_classes, expand_models,
-                                          model_chains, trie_arrays)
+                                          model_chains, pair_labels, trie_arrays)
 from netbuild.io.context_map import HmmState
 from netbuild.io.fstfile import arrays_to_fst, fst_to_arrays
 from netbuild.refine import minimize_arrays
+from netbuild.reweight import push_output_labels
 from netbuild.symbols import make_symbol_table
 
 PHONES = make_symbol_table("phones", ["a", "b"])
@@ -164,11 +165,8 @@ def pair_prone_graphs(draw):
 def test_trie_writes_word_pairs_as_two_words(case):
     """After the model-level push of output labels some arcs write two words (a pair
     label); the trie writes them as two and keeps H∘graph's relation."""
-    from netbuild.full_pipeline import _labels_pushed
-
     graph, chains, _ = case
-    details: dict = {}
-    pushed, pairs = _labels_pushed(fst_to_arrays(graph), details)
+    pushed, pairs = pair_labels(*push_output_labels(fst_to_arrays(graph)))
     got_arrays = trie_arrays(minimize_arrays(pushed), chains, pairs)
     assert got_arrays.olabel.max(initial=0) < WORDS.available_key()  # no pair is left
     got = fst_of_arrays(got_arrays)
@@ -187,11 +185,9 @@ def test_second_word_goes_one_arc_down_the_chain_or_onto_a_new_arc():
         np.array([0, 0, 0, 1, 3], np.int32), np.array([1, 2, 3, 0, 0], np.int32),
         np.array([1, 3, 1, 2, 2], np.int32), np.zeros(5, np.float32),
         np.array([3, 2, 1, 2, 2], np.int32), osymbols=WORDS)
-    from netbuild.full_pipeline import _labels_pushed
-
-    details: dict = {}
-    pushed, pairs = _labels_pushed(fst_to_arrays(graph), details)
-    assert details["arcs_writing_two_words"] == 2
+    pushed, second = push_output_labels(fst_to_arrays(graph))
+    assert np.count_nonzero(second) == 2
+    pushed, pairs = pair_labels(pushed, second)
     t = trie_arrays(pushed, chains, pairs)
     arcs = list(zip(t.src.tolist(), t.ilabel.tolist(), t.olabel.tolist(), t.dst.tolist()))
     # m3's chain (5, 6) is alone below state 0: w1 on kind 5, w2 one arc down on 6.
