@@ -394,10 +394,11 @@ def _labels_pushed(a: FstArrays, details: dict
     the arcs that then write two words carrying pair labels (`hmm_expand.pair_labels`),
     and the pairs (None when there is none).
 
-    Why: a word whose end is known only on a marker arc (a homophone or a prefix of
-    another word) gets its label there, right after the model arc that wrote the word
-    before it; once the markers are epsilon, the word can move onto that model arc's
-    chain, and the states that wrote it apart from the rest become equal to others.
+    Why: a word settled by its marker (a homophone, or a word that is the start of a
+    longer one) is written on the marker's arc (demo: 2,001 of 13,602 marker arcs
+    after determinize-models); once the markers are epsilon, states that differ only
+    in where a word sits become equal when every word that all ways on from a state
+    write first moves onto the arcs into it.
     On the 20k / 1M set 11,200 states push a word (22,338 arcs then write two), and
     the final graph has 15,519,867 arcs instead of 15,589,843.
     """
