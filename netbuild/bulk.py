@@ -74,8 +74,19 @@ def value_iteration(src: np.ndarray, dst: np.ndarray, prob: np.ndarray, final: n
     return None
 
 
-def _is_sorted(a: np.ndarray) -> bool:
+def is_sorted(a: np.ndarray) -> bool:
+    """True when the 1-D array `a` is in non-decreasing order."""
     return bool(a.shape[0] < 2 or (a[1:] >= a[:-1]).all())
+
+
+def segment_indices(first: np.ndarray, nodes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The indices ``first[v] .. first[v + 1] - 1`` of each node of `nodes`, one run
+    after the other, and where each node's run starts among them (`first`: the
+    exclusive prefix sums of the nodes' item counts, as in a CSR index)."""
+    lo = first[nodes]
+    count = first[nodes + 1] - lo
+    starts = np.cumsum(count) - count
+    return np.repeat(lo - starts, count) + np.arange(int(count.sum())), starts
 
 
 def stable_order(keys: np.ndarray) -> np.ndarray:
@@ -112,19 +123,16 @@ def distinct_inverse(keys: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def reachable(num_nodes: int, src: np.ndarray, dst: np.ndarray, seeds: np.ndarray) -> np.ndarray:
     """Nodes reachable from `seeds` along edges src -> dst (breadth-first, in bulk)."""
-    targets = dst if _is_sorted(src) else dst[stable_order(src)]
+    targets = dst if is_sorted(src) else dst[stable_order(src)]
     indptr = np.zeros(num_nodes + 1, dtype=np.int64)
     np.cumsum(np.bincount(src, minlength=num_nodes), out=indptr[1:])
     seen = np.zeros(num_nodes, dtype=bool)
     seen[seeds] = True
     frontier = np.flatnonzero(seen)
     while len(frontier):
-        starts, ends = indptr[frontier], indptr[frontier + 1]
-        counts = ends - starts
-        total = int(counts.sum())
-        if total == 0:
+        idx = segment_indices(indptr, frontier)[0]
+        if idx.shape[0] == 0:
             break
-        idx = np.repeat(starts - np.cumsum(counts) + counts, counts) + np.arange(total)
         nxt = targets[idx]
         nxt = nxt[~seen[nxt]]
         if len(nxt) > num_nodes // 8:

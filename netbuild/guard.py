@@ -179,16 +179,15 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
         arc_type = ifst.arc_type()
         # An ArrayFst is written as a const file: OpenFst reads that layout about four
         # times faster than a vector file (0.56 s against 2.1 s for the 20k / 1M C∘LG).
-        from .io.fstfile import ArrayFst, write_arrays
+        # (Imported here: the child, which runs this module, never needs numpy.)
+        from .io.fstfile import (ArrayFst, arrays_to_fst, const_file_arrays, forget_shared,
+                                 write_arrays)
 
         if isinstance(ifst, ArrayFst):
             write_arrays(ifst.arrays, ipath, "const")
         else:
             ifst.write(ipath)
         if handed:
-            # Imported here: the child, which runs this module, never needs numpy.
-            from .io.fstfile import forget_shared
-
             # The pre-check's conversion is the only other reference made here.
             forget_shared(ifst)
             del ifst
@@ -230,8 +229,6 @@ def determinize_guarded(ifst: pynini.Fst | FstHandoff, max_memory: int, timeout:
             # The child wrote a const file: its arrays are read with numpy and the FST
             # is built from them, which is cheaper than reading the file as a vector
             # FST and converting that back to arrays for the checks (20k / 1M: 4.5 s).
-            from .io.fstfile import ArrayFst, arrays_to_fst, const_file_arrays
-
             a = const_file_arrays(opath, isyms, osyms, arc_type)
             if as_arrays:
                 ofst = ArrayFst(a)

@@ -19,7 +19,7 @@ import dataclasses
 
 import numpy as np
 
-from .bulk import stable_order
+from .bulk import is_sorted, segment_indices, stable_order
 from .io.fstfile import FstArrays
 
 __all__ = ["distances_to_final", "push_arrays", "push_output_labels"]
@@ -46,14 +46,9 @@ def distances_to_final(num_states: int, src: np.ndarray, dst: np.ndarray,
     first_into = np.searchsorted(dst[into], np.arange(num_states + 1))
     changed = np.flatnonzero(np.isfinite(v))
     for _ in range(max_passes):
-        if changed.shape[0] == 0:
+        arcs = into[segment_indices(first_into, changed)[0]]
+        if arcs.shape[0] == 0:
             return v
-        lo, hi = first_into[changed], first_into[changed + 1]
-        count = hi - lo
-        total = int(count.sum())
-        if total == 0:
-            return v
-        arcs = into[np.repeat(lo - np.cumsum(count) + count, count) + np.arange(total)]
         offer = weight[arcs] + v[dst[arcs]]
         owner = src[arcs]
         better = offer < v[owner]
@@ -124,7 +119,7 @@ def output_label_potentials(a: FstArrays, max_passes: int = 5000) -> np.ndarray:
     p[np.isfinite(a.final_weights)] = 0
     if a.start >= 0:
         p[a.start] = 0
-    order = None if _grouped(a.src) else np.argsort(a.src, kind="stable")
+    order = None if is_sorted(a.src) else np.argsort(a.src, kind="stable")
     src = (a.src if order is None else a.src[order]).astype(np.int64)
     dst = (a.dst if order is None else a.dst[order]).astype(np.int64)
     out = (a.olabel if order is None else a.olabel[order]).astype(np.int64)
@@ -138,7 +133,7 @@ def output_label_potentials(a: FstArrays, max_passes: int = 5000) -> np.ndarray:
     for _ in range(max_passes):
         if pending.shape[0] == 0:
             break
-        arcs, starts = _segments(first_arc, pending)
+        arcs, starts = segment_indices(first_arc, pending)
         first = np.where(out[arcs] != 0, out[arcs], p[dst[arcs]])  # written first
         # (the unsettled value -1 is below every label, so the maximum skips it)
         hi = np.maximum.reduceat(first, starts)
@@ -152,10 +147,10 @@ def output_label_potentials(a: FstArrays, max_passes: int = 5000) -> np.ndarray:
         p[pending] = new
         if changed.shape[0] == 0:
             break
-        preds = src[into[_segments(first_into, changed)[0]]]
+        preds = src[into[segment_indices(first_into, changed)[0]]]
         flags = np.zeros(n, dtype=bool)
         flags[preds] = True
-        flags[p == 0] = False  # (0 is final: nothing more to learn there)
+        flags[p == 0] = False  # (0 cannot fall further)
         pending = np.flatnonzero(flags)
     else:  # not settled: an unsettled guess may be wrong, so push nothing
         return np.zeros(n, dtype=np.int64)
@@ -181,15 +176,3 @@ def push_output_labels(a: FstArrays) -> tuple[FstArrays, np.ndarray]:
     second = np.where((o != 0) & (ps == 0), pt, 0)
     return dataclasses.replace(a, olabel=first.astype(np.int32)), second.astype(np.int32)
 
-
-def _segments(first: np.ndarray, states: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The arc indices ``first[s] .. first[s + 1] - 1`` of each of `states` (which
-    have arcs), concatenated, and where each state's run starts among them."""
-    lo, hi = first[states], first[states + 1]
-    count = hi - lo
-    starts = np.cumsum(count) - count
-    return np.repeat(lo - starts, count) + np.arange(int(count.sum())), starts
-
-
-def _grouped(src: np.ndarray) -> bool:
-    return bool(src.shape[0] < 2 or (src[1:] >= src[:-1]).all())
